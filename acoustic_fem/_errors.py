@@ -1,0 +1,61 @@
+"""Exception classes of acoustic_fem.
+
+Every error the library raises on purpose is an instance of
+:class:`AcousticFemError`, so callers can catch the library's errors apart
+from programming errors.  The subclasses also derive from the matching
+built-in exception (``ValueError``, ``FileNotFoundError``, ...) so that code
+written against the built-ins keeps working.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "AcousticFemError",
+    "InputError",
+    "MeshError",
+    "MeshReadError",
+    "UnknownSurfaceError",
+    "SolverError",
+    "ConvergenceError",
+]
+
+
+class AcousticFemError(Exception):
+    """Base class of every error raised on purpose by acoustic_fem."""
+
+
+class InputError(AcousticFemError, ValueError):
+    """A value given by the caller is not acceptable; the message names it."""
+
+
+class MeshError(AcousticFemError, ValueError):
+    """A mesh is unusable (degenerate cells, orphan nodes, bad tags, ...)."""
+
+
+class MeshReadError(MeshError):
+    """A mesh file could not be read (missing, unreadable, wrong format)."""
+
+
+class UnknownSurfaceError(InputError, KeyError):
+    """A wall condition names a surface the mesh does not have."""
+
+    def __str__(self) -> str:  # KeyError would quote the message
+        return str(self.args[0]) if self.args else ""
+
+
+class SolverError(AcousticFemError, RuntimeError):
+    """A numerical solve failed."""
+
+
+class ConvergenceError(SolverError):
+    """The eigensolver did not converge for every requested mode.
+
+    Attributes
+    ----------
+    partial : Modes or None
+        The modes that did converge, so that work done is not lost.
+    """
+
+    def __init__(self, message: str, partial=None):
+        super().__init__(message)
+        self.partial = partial
