@@ -80,10 +80,18 @@ class Factor:
 def _cholmod(A: sp.csc_matrix) -> Factor:
     from sksparse.cholmod import CholmodNotPositiveDefiniteError, cholesky
 
-    try:
-        f = cholesky(A, mode="supernodal")
-    except CholmodNotPositiveDefiniteError as exc:
-        raise _NotDefinite(str(exc)) from None
+    # Nested dissection (METIS) roughly halves the fill and the factorisation
+    # time against CHOLMOD's default AMD choice on 3D P2 meshes (bench/).
+    f = None
+    for ordering in ("metis", "default"):
+        try:
+            f = cholesky(A, mode="supernodal", ordering_method=ordering)
+            break
+        except CholmodNotPositiveDefiniteError as exc:
+            raise _NotDefinite(str(exc)) from None
+        except Exception:  # METIS not compiled in: CHOLMOD's own choice
+            if ordering == "default":
+                raise
     return Factor(f.solve_A, A.shape[0], Backend.CHOLMOD.value, 0)
 
 

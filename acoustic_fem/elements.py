@@ -154,11 +154,15 @@ class ReferenceElement:
         return np.concatenate([gv, ge], axis=1)
 
 
-@lru_cache(maxsize=None)
 def reference_element(cell: CellType, order: int) -> ReferenceElement:
     """The Lagrange element of ``order`` (1 or 2) on ``cell``."""
-    if order not in (1, 2):
+    if isinstance(order, bool) or order not in (1, 2):
         raise InputError(
             f"element order {order!r} is not supported: use 1 (linear) or 2 (quadratic)."
         )
-    return ReferenceElement(CellType(cell), int(order))
+    return _element(CellType(cell), int(order))
+
+
+@lru_cache(maxsize=None)
+def _element(cell: CellType, order: int) -> ReferenceElement:
+    return ReferenceElement(cell, order)

@@ -90,7 +90,7 @@ def from_meshio(m, *, source: str = "mesh") -> Mesh:
     for name, (tag, gdim) in {k: tuple(np.asarray(v).ravel()[:2]) for k, v in m.field_data.items()}.items():
         names[(int(gdim), int(tag))] = str(name)
     has_groups = phys is not None and any(np.any(np.asarray(p) > 0) for p in phys)
-    has_sets = bool(getattr(m, "cell_sets", None))
+    has_sets = any(not str(k).startswith("gmsh:") for k in (getattr(m, "cell_sets", None) or {}))
     if len(dims) > 1 and not has_groups and not has_sets:
         raise MeshError(
             f"{source} holds cells of dimensions {dims} but no physical group says which form "
@@ -167,7 +167,8 @@ def _read_any(path: Path) -> Mesh:
     return from_meshio(_meshio_read(path), source=str(path))
 
 
-def _write_msh(path: Path, mesh: Mesh, version: str = "4.1") -> None:
+def _write_msh(path: Path, mesh: Mesh) -> None:
+    """gmsh MSH 2.2 ASCII (its $PhysicalNames keeps every region name)."""
     import meshio
 
     top = mesh.dim
@@ -204,8 +205,7 @@ def _write_msh(path: Path, mesh: Mesh, version: str = "4.1") -> None:
     )
     sink = io.StringIO()
     with contextlib.redirect_stdout(sink):
-        meshio.write(str(path), m, file_format=f"gmsh{'22' if version == '2.2' else ''}",
-                     binary=False)
+        meshio.write(str(path), m, file_format="gmsh22", binary=False)
 
 
 #: readers by file suffix; anything else goes to meshio's own detection
@@ -245,7 +245,7 @@ def read_mesh(path) -> Mesh:
 
 
 def write_mesh(path, mesh: Mesh, *, overwrite: bool = False) -> Path:
-    """Write ``mesh`` to ``path`` (``.msh``, gmsh 4.1 ASCII) keeping every region name.
+    """Write ``mesh`` to ``path`` (``.msh``, gmsh 2.2 ASCII) keeping every region name.
 
     The file is written atomically; an existing file is replaced only with
     ``overwrite=True``.
