@@ -131,7 +131,7 @@ def solve_generalized(
     n_estimate: int,
     backend: str = "auto",
     max_per_window: int = 160,
-    tol: float = 1e-12,
+    tol: float = 1e-10,
     engine: str = "block",
 ):
     """Lowest eigenpairs of K x = λ M x: the first ``count`` or all λ <= lam_max.

@@ -101,7 +101,7 @@ def _curved_cells(mesh: Mesh) -> np.ndarray:
 
 
 def _local_affine(mesh: Mesh, order: int, sel: np.ndarray):
-    """Local K and M (E, nb, nb) for the straight cells ``sel``."""
+    """Upper-triangle entries (E, nb(nb+1)/2) of local K and M for straight cells ``sel``."""
     d = mesh.dim
     kref, mref = _reference_matrices(mesh.cell_type, order)
     X = mesh.points[mesh.cells[sel, : d + 1], :d]
@@ -112,14 +112,14 @@ def _local_affine(mesh: Mesh, order: int, sel: np.ndarray):
     else:
         inv = np.linalg.inv(J)
     G = np.einsum("eai,ebi->eab", inv, inv) * adet[:, None, None]  # (E, d, d)
-    nb = mref.shape[0]
-    Ke = (G.reshape(len(det), d * d) @ kref.reshape(d * d, nb * nb)).reshape(-1, nb, nb)
-    Me = adet[:, None, None] * mref[None]
+    iu, ju = np.triu_indices(mref.shape[0])
+    Ke = G.reshape(len(det), d * d) @ kref[:, :, iu, ju].reshape(d * d, iu.size)
+    Me = adet[:, None] * mref[iu, ju][None, :]
     return Ke, Me
 
 
 def _local_curved(mesh: Mesh, order: int, sel: np.ndarray):
-    """Local K and M (E, nb, nb) for curved P2-geometry cells ``sel``."""
+    """Upper-triangle entries of local K and M for curved P2-geometry cells ``sel``."""
     d = mesh.dim
     el = reference_element(mesh.cell_type, order)
     geo = reference_element(mesh.cell_type, 2)
@@ -131,29 +131,43 @@ def _local_curved(mesh: Mesh, order: int, sel: np.ndarray):
     inv = np.linalg.inv(J)  # (E, Q, a, i)
     grad = np.einsum("qja,eqai->eqji", el.gradients(xi), inv)  # (E, Q, nb, d)
     wdet = np.abs(det) * w[None, :]
-    Ke = np.einsum("eq,eqid,eqjd->eij", wdet, grad, grad)
+    iu, ju = np.triu_indices(el.n_basis)
+    Ke = np.einsum("eq,eqkd,eqkd->ek", wdet, grad[:, :, iu, :], grad[:, :, ju, :])
     phi = el.values(xi)
-    Me = np.einsum("eq,qi,qj->eij", wdet, phi, phi)
+    Me = wdet @ (phi[:, iu] * phi[:, ju])
     return Ke, Me
 
 
 def _csr(cell_dofs: np.ndarray, n: int, *blocks: np.ndarray):
-    """Sum local matrices (E, nb, nb) into CSR matrices sharing one pattern."""
+    """Sum symmetric local matrices into CSR matrices sharing one pattern.
+
+    ``blocks`` hold the upper-triangle entries (E, nb(nb+1)/2) of each local
+    matrix, in ``numpy.triu_indices(nb)`` order.  Only those entries are
+    converted (one COO→CSR pass, two matrices packed as one complex array),
+    then mirrored: A = U + Uᵀ - diag(U).  Half the entries of a full
+    conversion, which dominates assembly time.
+    """
     E, nb = cell_dofs.shape
+    iu, ju = np.triu_indices(nb)
     idx = cell_dofs.astype(np.int32 if n < 2**31 - 1 else np.int64)
-    rows = np.broadcast_to(idx[:, :, None], (E, nb, nb)).ravel()
-    cols = np.broadcast_to(idx[:, None, :], (E, nb, nb)).ravel()
+    r, c = idx[:, iu], idx[:, ju]
+    lo, hi = np.minimum(r, c).ravel(), np.maximum(r, c).ravel()
+    del r, c
     if len(blocks) == 2:
-        data = np.empty((E, nb, nb), dtype=np.complex128)
+        data = np.empty((E, iu.size), dtype=np.complex128)
         data.real = blocks[0]
         data.imag = blocks[1]
-        A = sp.csr_matrix((data.ravel(), (rows, cols)), shape=(n, n))
-        A.sum_duplicates()
+    else:
+        data = np.asarray(blocks[0], dtype=float)
+    U = sp.coo_matrix((data.ravel(), (lo, hi)), shape=(n, n)).tocsr()
+    del data, lo, hi
+    A = (U + U.T).tocsr()
+    A.setdiag(U.diagonal())
+    A.sort_indices()
+    if len(blocks) == 2:
         a = sp.csr_matrix((A.data.real.copy(), A.indices, A.indptr), shape=(n, n))
         b = sp.csr_matrix((A.data.imag.copy(), A.indices, A.indptr), shape=(n, n))
         return a, b
-    A = sp.csr_matrix((blocks[0].ravel(), (rows, cols)), shape=(n, n))
-    A.sum_duplicates()
     return (A,)
 
 
@@ -162,7 +176,7 @@ def _local_matrices(mesh: Mesh, order: int):
     if not curved.any():
         return _local_affine(mesh, order, slice(None))
     nb = reference_element(mesh.cell_type, order).n_basis
-    Ke = np.empty((mesh.n_cells, nb, nb))
+    Ke = np.empty((mesh.n_cells, nb * (nb + 1) // 2))
     Me = np.empty_like(Ke)
     straight = np.flatnonzero(~curved)
     bent = np.flatnonzero(curved)
@@ -240,7 +254,8 @@ def boundary_mass(dofs: DofMap, names) -> sp.csr_matrix:
         if fd.size == 0:
             continue
         phi, wdet = _facet_geometry(mesh, name, dofs.order)
-        Be = np.einsum("eq,qi,qj->eij", wdet, phi, phi)
+        iu, ju = np.triu_indices(phi.shape[1])
+        Be = wdet @ (phi[:, iu] * phi[:, ju])
         total = total + _csr(fd, n, Be)[0]
     return total.tocsr()
 
