@@ -21,7 +21,7 @@ from .elements import CellType
 from .export import write_modes_csv, write_vtk
 from .mesh import Mesh, MeshWarning
 from .mesh_io import from_meshio, read_mesh, write_mesh
-from .modes import Modes, solve_modes
+from .modes import Modes, ResolutionWarning, solve_modes
 from .walls import PressureRelease, Rigid, Wall
 from . import analytic
 
@@ -31,6 +31,6 @@ __all__ = [
     "AcousticFemError", "ConvergenceError", "InputError", "MeshError", "MeshReadError",
     "SolverError", "UnknownSurfaceError", "OutputExistsError", "MeshWarning",
     "Air", "Assembly", "assemble", "boundary_mass", "DofMap", "CellType", "Mesh",
-    "read_mesh", "write_mesh", "from_meshio", "Modes", "solve_modes",
+    "read_mesh", "write_mesh", "from_meshio", "Modes", "solve_modes", "ResolutionWarning",
     "Rigid", "PressureRelease", "Wall", "write_vtk", "write_modes_csv", "analytic",
 ]

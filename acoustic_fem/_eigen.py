@@ -225,9 +225,11 @@ def _windows(K, M, count, lam_max, lam_guess, n_estimate, backend, max_per_windo
         span = max(cut - (taken.min() if taken.size else sigma - r), 1e-12 * scale)
         half = 0.5 * span * nev / max(taken.size, 1)
         lower = cut
-        remaining = (count - total) if count is not None else None
-        if remaining is not None:
-            nev = int(min(max(remaining + 2, 8), max_per_window, n - 2))
+        if count is not None:
+            nev = int(min(max(count - total + 2, 8), max_per_window, n - 2))
+        else:  # size the next window from the Weyl estimate of what is left
+            left = max(n_estimate - total, 0)
+            nev = int(min(max(int(1.25 * left) + 8, 16), max_per_window, n - 2))
         sigma = cut + 0.6 * half
     else:
         raise SolverError("the eigensolver's windows did not cover the requested range.")

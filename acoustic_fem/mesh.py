@@ -365,6 +365,12 @@ class Mesh:
         e = self.edges
         return float(np.linalg.norm(self.points[e[:, 0]] - self.points[e[:, 1]], axis=1).max())
 
+    @cached_property
+    def h_mean(self) -> float:
+        """Mean edge length."""
+        e = self.edges
+        return float(np.linalg.norm(self.points[e[:, 0]] - self.points[e[:, 1]], axis=1).mean())
+
     def __repr__(self) -> str:
         return (
             f"Mesh({self.cell_type.name.lower()}, order {self.geometry_order}, "

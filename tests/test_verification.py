@@ -172,8 +172,11 @@ DUCT_H = 0.06
 # 178.65 Hz; its distinct frequencies among the first 42 are >= 0.49 % apart).
 BOX = (4.8, 3.2, 2.4)
 BOX_H = 0.25
-# fmax sits in the 1.9 % gap between modes 173 (313.52 Hz) and 174 (319.57 Hz).
+# fmax sits in the 1.9 % gap between modes 173 (313.52 Hz) and 174 (319.57 Hz);
+# that solve (the heaviest) uses its own, slightly coarser mesh: the gap only
+# needs the error at 313.5 Hz well below 1.6 %.
 BOX_FMAX = 318.5
+FMAX_H = 0.28
 
 CUBE_L = 1.2
 CUBE_H = 0.09
@@ -214,9 +217,14 @@ def box_rigid(box_mesh, box_assembly):
 
 
 @pytest.fixture(scope="module")
-def box_rigid_fmax(box_mesh, box_assembly):
+def fmax_mesh(meshdir):
+    return af.read_mesh(meshgen.box_msh(meshdir / "box_fmax.msh", size=BOX, h=FMAX_H))
+
+
+@pytest.fixture(scope="module")
+def box_rigid_fmax(fmax_mesh):
     """All-rigid room, every mode up to BOX_FMAX (173 modes), P2: the heaviest solve."""
-    return af.solve_modes(box_mesh, order=2, fmax=BOX_FMAX, air=AIR, assembly=box_assembly)
+    return af.solve_modes(fmax_mesh, order=2, fmax=BOX_FMAX, air=AIR)
 
 
 @pytest.fixture(scope="module")
@@ -312,15 +320,15 @@ def test_duct_2d_modes(duct_mesh):
 # ---------------------------------------------------------------------------
 # 3. 3D rigid box, cube, box with a pressure-release ceiling
 # ---------------------------------------------------------------------------
-def p2_box_tol(f):
-    """Derived per-mode tolerance for the P2 box meshes of this file.
+def p2_box_tol(f, h=BOX_H):
+    """Derived per-mode tolerance for the P2 box meshes of this file (target size h).
 
     3 x (kh)^4/1440 with h = the gmsh target size: the 1D leading term
     (module docstring) times 3 for tetrahedral shape (gmsh's unstructured
     tetrahedra showed up to ~1.8 x while choosing these sizes; the factor 3
     is a margin, common practice), with a 1e-8 floor for the eigensolver.
     """
-    return 3.0 * p2_freq_error(f, BOX_H) + 1e-8
+    return 3.0 * p2_freq_error(f, h) + 1e-8
 
 
 def test_box_first_40_modes(box_rigid):
@@ -515,15 +523,15 @@ def test_box_fmax_finds_every_mode_once(box_rigid_fmax):
     # is above fmax and FE only raises it (min-max, Babuska & Osborn 1991).
     below = exact[-1]
     above = analytic.box_modes(BOX, c=C, count=len(exact) + 1).frequencies[-1]
-    assert below * (1 + p2_box_tol(below)) < BOX_FMAX < above
+    assert below * (1 + p2_box_tol(below, FMAX_H)) < BOX_FMAX < above
     fe = box_rigid_fmax.frequencies
     assert len(fe) == len(exact)  # none missing, none extra
     assert np.all(fe <= BOX_FMAX)
     assert abs(fe[0]) < 1e-6
     err = rel_err(fe[1:], exact[1:])
-    # per-mode agreement at the derived tolerance (0.9 % at the top, 313.5 Hz;
-    # measured <= 0.42 %)
-    assert np.all(err < p2_box_tol(exact[1:])), err
+    # per-mode agreement at the derived tolerance (1.4 % at the top, 313.5 Hz;
+    # measured <= 0.61 %)
+    assert np.all(err < p2_box_tol(exact[1:], FMAX_H)), err
     assert np.all(err > -1e-10), err
 
 
@@ -555,9 +563,11 @@ def test_zero_mode_is_uniform(case, tube_mesh, request):
 # ---------------------------------------------------------------------------
 def _normalisation_case(case, request):
     """(modes, mesh, order, released surface names)."""
-    if case in ("box-rigid-P2", "box-fmax-P2"):
-        name = "box_rigid" if case == "box-rigid-P2" else "box_rigid_fmax"
-        return request.getfixturevalue(name), request.getfixturevalue("box_mesh"), 2, []
+    if case == "box-rigid-P2":
+        return request.getfixturevalue("box_rigid"), request.getfixturevalue("box_mesh"), 2, []
+    if case == "box-fmax-P2":
+        return (request.getfixturevalue("box_rigid_fmax"), request.getfixturevalue("fmax_mesh"),
+                2, [])
     if case == "box-ceiling-P2":
         return (request.getfixturevalue("box_ceiling"), request.getfixturevalue("box_mesh"), 2,
                 ["z1"])
