@@ -79,9 +79,19 @@ def _affine(X: np.ndarray):
     X : (E, d+1, d) vertex coordinates. Returns J (E, d, d), det (E,).
     """
     J = np.transpose(X[:, 1:, :] - X[:, :1, :], (0, 2, 1))
-    if J.shape[1] == 1:
-        return J, J[:, 0, 0].copy()
-    return J, np.linalg.det(J)
+    return J, _det(J)
+
+
+def _det(J: np.ndarray) -> np.ndarray:
+    """Determinants of (E, d, d) matrices, d <= 3, by explicit formulas."""
+    d = J.shape[-1]
+    if d == 1:
+        return J[..., 0, 0].copy()
+    if d == 2:
+        return J[..., 0, 0] * J[..., 1, 1] - J[..., 0, 1] * J[..., 1, 0]
+    return (J[..., 0, 0] * (J[..., 1, 1] * J[..., 2, 2] - J[..., 1, 2] * J[..., 2, 1])
+            - J[..., 0, 1] * (J[..., 1, 0] * J[..., 2, 2] - J[..., 1, 2] * J[..., 2, 0])
+            + J[..., 0, 2] * (J[..., 1, 0] * J[..., 2, 1] - J[..., 1, 1] * J[..., 2, 0]))
 
 
 def _curved_cells(mesh: Mesh) -> np.ndarray:
@@ -100,20 +110,46 @@ def _curved_cells(mesh: Mesh) -> np.ndarray:
     return dev > 1e-10 * size
 
 
-def _local_affine(mesh: Mesh, order: int, sel: np.ndarray):
-    """Upper-triangle entries (E, nb(nb+1)/2) of local K and M for straight cells ``sel``."""
+def _local_affine(mesh: Mesh, order: int, sel):
+    """Upper-triangle entries (E, nb(nb+1)/2) of local K and M for straight cells ``sel``.
+
+    Works on the Jacobian's entries as contiguous (E,) arrays (explicit
+    cofactors), then one (E, d²) x (d², n_entries) matrix product with the
+    exact reference integrals.
+    """
     d = mesh.dim
     kref, mref = _reference_matrices(mesh.cell_type, order)
-    X = mesh.points[mesh.cells[sel, : d + 1], :d]
-    J, det = _affine(X)
-    adet = np.abs(det)
-    if d == 1:
-        inv = 1.0 / J
-    else:
-        inv = np.linalg.inv(J)
-    G = np.einsum("eai,ebi->eab", inv, inv) * adet[:, None, None]  # (E, d, d)
     iu, ju = np.triu_indices(mref.shape[0])
-    Ke = G.reshape(len(det), d * d) @ kref[:, :, iu, ju].reshape(d * d, iu.size)
+    cells = mesh.cells[sel, : d + 1]
+    P = mesh.points
+    x0 = P[cells[:, 0]]
+    # columns of J: J[:, i, a] = x_{a+1, i} - x_{0, i}
+    col = [P[cells[:, a + 1]] - x0 for a in range(d)]
+    J = [[np.ascontiguousarray(col[a][:, i]) for a in range(d)] for i in range(d)]
+    if d == 1:
+        det = J[0][0]
+        adj = [[np.ones_like(det)]]
+    elif d == 2:
+        det = J[0][0] * J[1][1] - J[0][1] * J[1][0]
+        adj = [[J[1][1], -J[0][1]], [-J[1][0], J[0][0]]]
+    else:
+        adj = [[None] * 3 for _ in range(3)]
+        for a in range(3):  # cofactors: loops over matrix positions, not cells
+            for b in range(3):
+                r = [k for k in range(3) if k != b]
+                c = [k for k in range(3) if k != a]
+                adj[a][b] = (-1) ** (a + b) * (J[r[0]][c[0]] * J[r[1]][c[1]]
+                                               - J[r[0]][c[1]] * J[r[1]][c[0]])
+        det = J[0][0] * adj[0][0] + J[0][1] * adj[1][0] + J[0][2] * adj[2][0]
+    adet = np.abs(det)
+    # G = |det| J⁻¹ J⁻ᵀ = adj adjᵀ / |det|, adj = det J⁻¹
+    G = np.empty((len(adet), d, d))
+    for a in range(d):
+        for b in range(a, d):
+            g = sum(adj[a][i] * adj[b][i] for i in range(d)) / adet
+            G[:, a, b] = g
+            G[:, b, a] = g
+    Ke = G.reshape(-1, d * d) @ kref[:, :, iu, ju].reshape(d * d, iu.size)
     Me = adet[:, None] * mref[iu, ju][None, :]
     return Ke, Me
 
@@ -144,7 +180,7 @@ def _csr(cell_dofs: np.ndarray, n: int, *blocks: np.ndarray):
     ``blocks`` hold the upper-triangle entries (E, nb(nb+1)/2) of each local
     matrix, in ``numpy.triu_indices(nb)`` order.  Only those entries are
     converted (one COO→CSR pass, two matrices packed as one complex array),
-    then mirrored: A = U + Uᵀ - diag(U).  Half the entries of a full
+    then mirrored: A = U + Uᵀ with the diagonal entries halved beforehand.  Half the entries of a full
     conversion, which dominates assembly time.
     """
     E, nb = cell_dofs.shape
@@ -153,17 +189,17 @@ def _csr(cell_dofs: np.ndarray, n: int, *blocks: np.ndarray):
     r, c = idx[:, iu], idx[:, ju]
     lo, hi = np.minimum(r, c).ravel(), np.maximum(r, c).ravel()
     del r, c
+    half = np.where(iu == ju, 0.5, 1.0)  # diagonal entries appear in U and in Uᵀ
     if len(blocks) == 2:
         data = np.empty((E, iu.size), dtype=np.complex128)
-        data.real = blocks[0]
-        data.imag = blocks[1]
+        data.real = blocks[0] * half
+        data.imag = blocks[1] * half
     else:
-        data = np.asarray(blocks[0], dtype=float)
+        data = np.asarray(blocks[0], dtype=float) * half
     U = sp.coo_matrix((data.ravel(), (lo, hi)), shape=(n, n)).tocsr()
     del data, lo, hi
     A = (U + U.T).tocsr()
-    A.setdiag(U.diagonal())
-    A.sort_indices()
+    A.sort_indices()  # a no-op when the sum is already canonical
     if len(blocks) == 2:
         a = sp.csr_matrix((A.data.real.copy(), A.indices, A.indptr), shape=(n, n))
         b = sp.csr_matrix((A.data.imag.copy(), A.indices, A.indptr), shape=(n, n))

@@ -133,8 +133,9 @@ class Mesh:
 
         # orientation and degeneracy on the vertices (vectorised over cells)
         X = pts[cells[:, : d + 1], :d]
-        J = np.transpose(X[:, 1:, :] - X[:, :1, :], (0, 2, 1))
-        det = np.linalg.det(J) if d > 1 else J[:, 0, 0]
+        from .assembly import _affine
+
+        J, det = _affine(X)
         scale = np.linalg.norm(X[:, 1:, :] - X[:, :1, :], axis=2).max(axis=1)
         bad = np.abs(det) <= 1e-10 * scale**d
         if np.any(bad):

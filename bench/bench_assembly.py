@@ -22,7 +22,7 @@ from _common import box_mesh, measured, save
 
 def main():
     ap = argparse.ArgumentParser()
-    ap.add_argument("--h", type=float, default=0.1, help="mesh size of the 5.2x4.1x2.8 m box")
+    ap.add_argument("--h", type=float, default=0.095, help="mesh size of the 5.2x4.1x2.8 m box")
     args = ap.parse_args()
     import skfem
     from skfem.models.poisson import laplace, mass
@@ -36,12 +36,17 @@ def main():
     res = dict(n_tets=mesh.n_cells)
     for order, el in ((1, skfem.ElementTetP1()), (2, skfem.ElementTetP2())):
         t = {}
-        with measured(t, "ours"):
-            a = af.assemble(af.Mesh(mesh.points, mesh.cells, mesh.cell_type), order)
-        with measured(t, "skfem"):
-            basis = skfem.Basis(sk_mesh, el)
-            K = laplace.assemble(basis)
-            M = mass.assemble(basis)
+        # best of two runs each (the first pays page faults and caches)
+        for rep in range(2):
+            fresh = af.Mesh(mesh.points, mesh.cells, mesh.cell_type)  # no cached topology,
+            with measured(t, f"ours{rep}"):                      # like skfem's MeshTet
+                a = af.assemble(fresh, order)
+            with measured(t, f"skfem{rep}"):
+                basis = skfem.Basis(sk_mesh, el)
+                K = laplace.assemble(basis)
+                M = mass.assemble(basis)
+        for who in ("ours", "skfem"):
+            t[who] = min((t[f"{who}0"], t[f"{who}1"]), key=lambda r: r["seconds"])
         dk = abs(spla.norm(K) - spla.norm(a.K)) / spla.norm(K)
         dm = abs(spla.norm(M) - spla.norm(a.M)) / spla.norm(M)
         r = dict(n_dofs=a.n_dofs, ours=t["ours"], skfem=t["skfem"],
