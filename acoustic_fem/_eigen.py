@@ -131,6 +131,7 @@ def solve_generalized(
     n_estimate: int,
     backend: str = "auto",
     max_per_window: int = 160,
+    max_first_window: int = 400,
     tol: float = 1e-10,
     engine: str = "block",
 ):
@@ -162,7 +163,7 @@ def solve_generalized(
     else:
         report.method = "shift-invert windows"
         lam, X = _windows(K, M, count, lam_max, lam_guess, n_estimate, backend,
-                          max_per_window, tol, report, engine)
+                          max_per_window, max_first_window, tol, report, engine)
     # M-normalise (ARPACK returns M-orthogonal vectors; this fixes the scale)
     MX = M @ X
     norms = np.sqrt(np.einsum("ij,ij->j", X, MX))
@@ -174,12 +175,15 @@ def solve_generalized(
     return lam, X, report
 
 
-def _windows(K, M, count, lam_max, lam_guess, n_estimate, backend, max_per_window, tol, report,
+def _windows(K, M, count, lam_max, lam_guess, n_estimate, backend, max_per_window,
+             max_first_window, tol, report,
              engine):
     n = K.shape[0]
     want = count if count is not None else n_estimate
     sigma = -0.1 * lam_guess
-    nev = int(min(max(want + 2, 8), max_per_window, n - 2))
+    # the first window has σ < 0: a Cholesky factorisation (fast), so it may
+    # be large; later windows (σ > 0) need an indefinite factorisation
+    nev = int(min(max(want + 2, 8), max_first_window, n - 2))
     lower = -math.inf
     acc_lam: list[np.ndarray] = []
     acc_X: list[np.ndarray] = []

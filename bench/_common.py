@@ -16,15 +16,25 @@ sys.path.insert(0, str(HERE.parent / "tests"))  # meshgen
 
 @contextmanager
 def measured(store: dict, key: str):
-    """Wall time and peak traced memory (numpy + Python allocations) of a block."""
+    """Wall time and peak traced memory of a block.
+
+    ``peak_mb`` counts numpy and Python allocations (tracemalloc), not memory
+    that C libraries such as CHOLMOD or SuperLU allocate themselves;
+    ``process_peak_rss_mb`` is the process's peak resident size so far
+    (covers everything, but is monotone over the run).
+    """
     tracemalloc.start()
     tracemalloc.reset_peak()
     t0 = time.perf_counter()
     try:
         yield
     finally:
+        import resource
+
         store[key] = dict(seconds=time.perf_counter() - t0,
-                          peak_mb=tracemalloc.get_traced_memory()[1] / 2**20)
+                          peak_mb=tracemalloc.get_traced_memory()[1] / 2**20,
+                          process_peak_rss_mb=resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+                          / 1024)
         tracemalloc.stop()
 
 

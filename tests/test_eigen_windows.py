@@ -50,7 +50,7 @@ def test_windows_find_every_eigenvalue_once(cube_problem, engine, backend, monke
     lam_max = 0.5 * (lam_ref[lam_ref <= lam_max].max() + lam_ref[lam_ref > lam_max].min())
     lam, X, rep = _eigen.solve_generalized(
         K, M, count=None, lam_max=lam_max, lam_guess=(np.pi / 2) ** 2, n_estimate=60,
-        backend=backend, max_per_window=40, engine=engine)
+        backend=backend, max_per_window=40, max_first_window=40, engine=engine)
     expected = lam_ref[lam_ref <= lam_max]
     assert len(rep.windows) >= 3  # several windows really were used
     assert lam.shape == expected.shape  # none lost, none doubled
