@@ -13,6 +13,7 @@ share one sparsity pattern.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -142,6 +143,17 @@ def _local_affine(mesh: Mesh, order: int, sel):
                                                - J[r[0]][c[1]] * J[r[1]][c[0]])
         det = J[0][0] * adj[0][0] + J[0][1] * adj[1][0] + J[0][2] * adj[2][0]
     adet = np.abs(det)
+    Me = adet[:, None] * mref[iu, ju][None, :]
+    if order == 1:
+        # P1: ∇φ_{a+1} = row a of J⁻¹ = adj[a]/det, ∇φ_0 = -Σ_a ∇φ_{a+1};
+        # K_ij = |det|/d! ∇φ_i·∇φ_j = (adj_i · adj_j) / (d! |det|)
+        rows = [[-sum(adj[a][i] for a in range(d)) for i in range(d)]]
+        rows += [[adj[a][i] for i in range(d)] for a in range(d)]
+        scale = 1.0 / (math.factorial(d) * adet)
+        Ke = np.empty((len(adet), iu.size))
+        for k, (p, q) in enumerate(zip(iu, ju)):  # loop over local pairs, not cells
+            Ke[:, k] = sum(rows[p][i] * rows[q][i] for i in range(d)) * scale
+        return Ke, Me
     # G = |det| J⁻¹ J⁻ᵀ = adj adjᵀ / |det|, adj = det J⁻¹
     G = np.empty((len(adet), d, d))
     for a in range(d):
@@ -150,7 +162,6 @@ def _local_affine(mesh: Mesh, order: int, sel):
             G[:, a, b] = g
             G[:, b, a] = g
     Ke = G.reshape(-1, d * d) @ kref[:, :, iu, ju].reshape(d * d, iu.size)
-    Me = adet[:, None] * mref[iu, ju][None, :]
     return Ke, Me
 
 
