@@ -317,13 +317,34 @@ class Mesh:
         return _freeze(0.5 * (self.points[e[:, 0]] + self.points[e[:, 1]]))
 
     @cached_property
-    def boundary_facet_keys(self) -> np.ndarray:
-        """Sorted keys of the facets on the boundary (facets of exactly one cell)."""
+    def _boundary_facet_data(self):
         loc = FACETS[self.cell_type]
         f = self.vertices[:, loc].reshape(-1, loc.shape[1])
         keys = row_keys(f, self.n_points)
-        u, counts = np.unique(keys, return_counts=True)
-        return _freeze(u[counts == 1])
+        u, first, counts = np.unique(keys, return_index=True, return_counts=True)
+        once = counts == 1
+        return _freeze(u[once]), _freeze(f[first[once]])
+
+    @property
+    def boundary_facet_keys(self) -> np.ndarray:
+        """Sorted keys of the facets on the boundary (facets of exactly one cell)."""
+        return self._boundary_facet_data[0]
+
+    @property
+    def boundary_facets(self) -> np.ndarray:
+        """(n_boundary_facets, dim) vertex nodes of every facet on the boundary, named or not."""
+        return self._boundary_facet_data[1]
+
+    @cached_property
+    def boundary_measure(self) -> float:
+        """Total area (3D), length (2D) or point count (1D) of the boundary (straight facets)."""
+        P = self.points[self.boundary_facets]
+        if self.dim == 3:
+            return float(0.5 * np.linalg.norm(np.cross(P[:, 1] - P[:, 0], P[:, 2] - P[:, 0]),
+                                              axis=1).sum())
+        if self.dim == 2:
+            return float(np.linalg.norm(P[:, 1] - P[:, 0], axis=1).sum())
+        return float(len(P))
 
     @cached_property
     def cell_measures(self) -> np.ndarray:

@@ -269,7 +269,7 @@ def solve_modes(
     if mesh.dim > 1:
         areas = {n: float(facet_measures(mesh, n).sum()) for n in mesh.surface_names}
         fixed_area = sum(areas[n] for n in fixed_names)
-        total_area = _boundary_total(mesh)
+        total_area = mesh.boundary_measure
     else:
         fixed_area = total_area = 0.0
     if lam_max is not None:
@@ -296,20 +296,3 @@ def solve_modes(
         total_seconds=time.perf_counter() - t0,
     )
     return Modes(freq, lam, shapes, dofs, air, full_walls, info=info)
-
-
-def _boundary_total(mesh: Mesh) -> float:
-    """Total area (3D) or length (2D) of the mesh boundary, named or not."""
-    from .elements import FACETS
-
-    loc = FACETS[mesh.cell_type]
-    f = mesh.vertices[:, loc].reshape(-1, loc.shape[1])
-    from ._keys import row_keys
-
-    keys = row_keys(f, mesh.n_points)
-    _, first, counts = np.unique(keys, return_index=True, return_counts=True)
-    bf = f[first[counts == 1]]
-    P = mesh.points[bf]
-    if mesh.dim == 3:
-        return float(0.5 * np.linalg.norm(np.cross(P[:, 1] - P[:, 0], P[:, 2] - P[:, 0]), axis=1).sum())
-    return float(np.linalg.norm(P[:, 1] - P[:, 0], axis=1).sum())
