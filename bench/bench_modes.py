@@ -62,6 +62,7 @@ def main():
         mesh = box_mesh(Path(tempfile.gettempdir()) / f"bench_box_{h}.msh", SIZE, h)
         modes, t = ours(mesh, args.count, args.backend)
         row = dict(h=h, n_dofs=modes.dofs.n_dofs, seconds=t["seconds"], peak_mb=t["peak_mb"],
+                   process_peak_rss_mb=t["process_peak_rss_mb"],
                    assembly_seconds=modes.info["assembly_seconds"],
                    eigen_seconds=modes.info["eigen_seconds"],
                    windows=modes.info["windows"])
