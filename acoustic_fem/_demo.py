@@ -11,7 +11,6 @@ mesh size chosen for P2 elements up to the demo's fmax.
 
 from __future__ import annotations
 
-import math
 import os
 import tempfile
 from pathlib import Path
@@ -108,7 +107,8 @@ def demo_room(h: float | None = None, order: int = 2) -> Mesh:
         finally:
             Path(tmp).unlink(missing_ok=True)
     finally:
-        gmsh.model.remove() if gmsh.isInitialized() else None
+        if gmsh.isInitialized():
+            gmsh.model.remove()
         if not was_init:
             gmsh.finalize()
     return mesh

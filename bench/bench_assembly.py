@@ -14,7 +14,6 @@ import argparse
 import tempfile
 from pathlib import Path
 
-import numpy as np
 import scipy.sparse.linalg as spla
 
 from _common import box_mesh, measured, save
