@@ -23,7 +23,7 @@ from .mesh import Mesh, MeshWarning
 from .mesh_io import from_meshio, read_mesh, write_mesh
 from .modes import Modes, ResolutionWarning, solve_modes
 from .walls import PressureRelease, Rigid, Wall
-from . import analytic
+from . import analytic, geometry
 
 __version__ = "0.1.0"
 
@@ -32,5 +32,5 @@ __all__ = [
     "SolverError", "UnknownSurfaceError", "OutputExistsError", "MeshWarning",
     "Air", "Assembly", "assemble", "boundary_mass", "DofMap", "CellType", "Mesh",
     "read_mesh", "write_mesh", "from_meshio", "Modes", "solve_modes", "ResolutionWarning",
-    "Rigid", "PressureRelease", "Wall", "write_vtk", "write_modes_csv", "analytic",
+    "Rigid", "PressureRelease", "Wall", "write_vtk", "write_modes_csv", "analytic", "geometry",
 ]
