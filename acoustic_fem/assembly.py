@@ -189,27 +189,36 @@ def _csr(cell_dofs: np.ndarray, n: int, *blocks: np.ndarray):
     """Sum symmetric local matrices into CSR matrices sharing one pattern.
 
     ``blocks`` hold the upper-triangle entries (E, nb(nb+1)/2) of each local
-    matrix, in ``numpy.triu_indices(nb)`` order.  Only those entries are
-    converted (one COO→CSR pass, two matrices packed as one complex array),
-    then mirrored: A = U + Uᵀ with the diagonal entries halved beforehand.  Half the entries of a full
-    conversion, which dominates assembly time.
+    matrix, in ``numpy.triu_indices(nb)`` order.  Diagonal entries are summed
+    per DOF with ``bincount`` (linear time); only the strict upper triangle
+    goes through one COO→CSR conversion (two matrices packed as one complex
+    array), then A = U + Uᵀ + D.  That conversion and its index sort dominate
+    assembly time, so it gets as few entries as possible.
     """
     E, nb = cell_dofs.shape
     iu, ju = np.triu_indices(nb)
+    off = iu != ju
     idx = cell_dofs.astype(np.int32 if n < 2**31 - 1 else np.int64)
-    r, c = idx[:, iu], idx[:, ju]
+    r, c = idx[:, iu[off]], idx[:, ju[off]]
     lo, hi = np.minimum(r, c).ravel(), np.maximum(r, c).ravel()
     del r, c
-    half = np.where(iu == ju, 0.5, 1.0)  # diagonal entries appear in U and in Uᵀ
+    # diagonal entries summed by bincount (linear time), off-diagonal ones by
+    # one COO→CSR conversion of the strict upper triangle
+    dpos = np.flatnonzero(~off)
+    didx = cell_dofs.ravel()  # local diagonal k belongs to local DOF k, in order
+    diags = [np.bincount(didx, weights=np.asarray(b)[:, dpos].ravel(), minlength=n)
+             for b in blocks]
     if len(blocks) == 2:
-        data = np.empty((E, iu.size), dtype=np.complex128)
-        data.real = blocks[0] * half
-        data.imag = blocks[1] * half
+        data = np.empty((E, int(off.sum())), dtype=np.complex128)
+        data.real = blocks[0][:, off]
+        data.imag = blocks[1][:, off]
+        dvals = diags[0] + 1j * diags[1]
     else:
-        data = np.asarray(blocks[0], dtype=float) * half
+        data = np.asarray(blocks[0], dtype=float)[:, off]
+        dvals = diags[0]
     U = sp.coo_matrix((data.ravel(), (lo, hi)), shape=(n, n)).tocsr()
     del data, lo, hi
-    A = (U + U.T).tocsr()
+    A = (U + U.T + sp.diags_array(dvals, format="csr")).tocsr()
     A.sort_indices()  # a no-op when the sum is already canonical
     if len(blocks) == 2:
         a = sp.csr_matrix((A.data.real.copy(), A.indices, A.indptr), shape=(n, n))
