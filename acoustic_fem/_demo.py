@@ -11,10 +11,6 @@ mesh size chosen for P2 elements up to the demo's fmax.
 
 from __future__ import annotations
 
-import os
-import tempfile
-from pathlib import Path
-
 import numpy as np
 
 from .mesh import Mesh
@@ -50,20 +46,12 @@ def demo_room(h: float | None = None, order: int = 2) -> Mesh:
     -------
     Mesh with the surfaces listed in the module docstring and volume ``air``.
     """
-    import gmsh
-
-    from .mesh_io import read_mesh
+    from .geometry import _mesh_with_gmsh
 
     if h is None:
         h = 343.0 / DEMO_FMAX / 6.0
-    was_init = gmsh.isInitialized()
-    if not was_init:
-        gmsh.initialize(interruptible=False)
-    try:
-        gmsh.option.setNumber("General.Terminal", 0)
-        gmsh.option.setNumber("General.NumThreads", 1)
-        gmsh.model.add("demo_room")
-        occ = gmsh.model.occ
+
+    def build(occ):
         pts = [occ.addPoint(x, y, 0.0) for x, y in _FLOOR]
         lines = [occ.addLine(pts[i], pts[(i + 1) % len(pts)]) for i in range(len(pts))]
         floor = occ.addPlaneSurface([occ.addCurveLoop(lines)])
@@ -77,41 +65,15 @@ def demo_room(h: float | None = None, order: int = 2) -> Mesh:
         occ.translate([(2, side)], 0, -0.1, 0)
         wedge = [t for d, t in occ.extrude([(2, side)], 0, 4.4, 0) if d == 3][0]
         room, _ = occ.intersect([(3, vol)], [(3, wedge)])
+        # the doorway rectangle, fragmented into the left wall as its own face
         y0, y1, z1 = _DOOR[1], _DOOR[1] + _DOOR[3], _DOOR[2]
         dp = [occ.addPoint(0.0, y, z) for y, z in [(y0, 0.0), (y1, 0.0), (y1, z1), (y0, z1)]]
         dl = [occ.addLine(dp[i], dp[(i + 1) % 4]) for i in range(4)]
         door = occ.addPlaneSurface([occ.addCurveLoop(dl)])
-        frag, _ = occ.fragment(room, [(2, door)])
-        occ.synchronize()
-        vols = gmsh.model.getEntities(3)
-        faces = gmsh.model.getBoundary(vols, oriented=False, combined=True)
-        groups: dict[str, list[int]] = {n: [] for n in ["floor", "ceiling", "doorway", *_WALLS]}
-        for _, tag in faces:
-            cx, cy, cz = occ.getCenterOfMass(2, tag)
-            groups[_classify(cx, cy, cz)].append(tag)
-        for name, tags in groups.items():
-            gmsh.model.addPhysicalGroup(2, tags, name=name)
-        gmsh.model.addPhysicalGroup(3, [t for _, t in vols], name="air")
-        gmsh.option.setNumber("Mesh.MeshSizeMax", h)
-        gmsh.option.setNumber("Mesh.MeshSizeMin", 0.3 * h)
-        gmsh.option.setNumber("Mesh.Algorithm3D", 10)
-        gmsh.model.mesh.generate(3)
-        if order == 2:
-            gmsh.model.mesh.setOrder(2)
-        fd, tmp = tempfile.mkstemp(suffix=".msh")
-        os.close(fd)
-        try:
-            gmsh.option.setNumber("Mesh.MshFileVersion", 4.1)
-            gmsh.write(tmp)
-            mesh = read_mesh(tmp)
-        finally:
-            Path(tmp).unlink(missing_ok=True)
-    finally:
-        if gmsh.isInitialized():
-            gmsh.model.remove()
-        if not was_init:
-            gmsh.finalize()
-    return mesh
+        occ.fragment(room, [(2, door)])
+
+    names = ["floor", "ceiling", "doorway", *_WALLS]
+    return _mesh_with_gmsh("demo_room", build, _classify, names, h, order)
 
 
 def _classify(cx: float, cy: float, cz: float) -> str:

@@ -382,16 +382,20 @@ class Mesh:
         return _freeze(np.vstack([self.points.min(axis=0), self.points.max(axis=0)]))
 
     @cached_property
+    def edge_lengths(self) -> np.ndarray:
+        """(n_edges,) straight lengths of the edges (vertex to vertex)."""
+        e = self.edges
+        return _freeze(np.linalg.norm(self.points[e[:, 0]] - self.points[e[:, 1]], axis=1))
+
+    @property
     def h_max(self) -> float:
         """Longest edge length."""
-        e = self.edges
-        return float(np.linalg.norm(self.points[e[:, 0]] - self.points[e[:, 1]], axis=1).max())
+        return float(self.edge_lengths.max())
 
-    @cached_property
+    @property
     def h_mean(self) -> float:
         """Mean edge length."""
-        e = self.edges
-        return float(np.linalg.norm(self.points[e[:, 0]] - self.points[e[:, 1]], axis=1).mean())
+        return float(self.edge_lengths.mean())
 
     def __repr__(self) -> str:
         return (
