@@ -9,6 +9,7 @@ the rectangular-room modes of Morse & Ingard, Theoretical Acoustics (1968),
 
 from __future__ import annotations
 
+import math
 import warnings
 
 import numpy as np
@@ -193,3 +194,190 @@ def test_gmsh_left_as_found():
         assert gmsh.option.getNumber("Mesh.MeshSizeMax") == 7.0
     finally:
         gmsh.finalize()
+
+
+# ------------------------------------------- sloped ceiling, obstacles, patches
+from acoustic_fem import PressureRelease  # noqa: E402
+from acoustic_fem.geometry import Column, Cuboid, Patch, cylinder, plan, sphere, tube  # noqa: E402
+
+# our own studio: 5 m x 4 m, ceiling 2.5 m at x = 0 rising 0.1 m per metre
+# along x, a 1 m x 1 m x 1.2 m equipment cabinet in the far corner, a
+# door in wall_1 (y = 0) and an absorber panel on the ceiling
+STUDIO = [(0.0, 0.0), (5.0, 0.0), (5.0, 4.0), (0.0, 4.0)]
+SLOPE = (0.1, 0.0)
+CABINET = Cuboid("cabinet", (4.0, 3.0, 0.0), (5.0, 4.0, 1.2))
+DOOR = Patch("door", "wall_1", (1.0, 0.0), (2.0, 2.0))
+PANEL = Patch("panel", "ceiling", (1.0, 1.0), (3.0, 2.0))
+
+
+def _studio(order=2, fmax=70, **kw):
+    return floor_plan(STUDIO, 2.5, fmax=fmax, order=order, ceiling_slope=SLOPE,
+                      obstacles=[CABINET], patches=[DOOR, PANEL], **kw)
+
+
+@pytest.mark.parametrize("order", [1, 2])
+def test_sloped_ceiling_obstacle_patches_exact_measures(order):
+    m = _studio(order)
+    assert set(m.surface_names) == {"floor", "ceiling", "wall_1", "wall_2", "wall_3", "wall_4",
+                                    "cabinet", "door", "panel"}
+    # exact values by elementary geometry (all faces planar, so the meshes are
+    # exact and only rounding remains): ceiling z = 2.5 + 0.1 x
+    stretch = math.sqrt(1.0 + 0.1**2)       # area factor of the inclined plane
+    z = lambda x: 2.5 + 0.1 * x             # noqa: E731
+    wall_1 = 5 * (z(0) + z(5)) / 2          # trapezoid under the slope
+    expect = {
+        "floor": 20.0 - 1.0,                # minus the cabinet's footprint
+        "ceiling": (20.0 - 2.0) * stretch,  # minus the panel (2 m x 1 m in plan)
+        "panel": 2.0 * stretch,
+        "wall_1": wall_1 - 2.0,             # minus the 1 m x 2 m door
+        "door": 2.0,
+        "wall_2": 4 * z(5) - 1.0 * 1.2,     # x = 5, minus the cabinet's back
+        "wall_3": wall_1 - 1.0 * 1.2,       # y = 4, minus the cabinet's side
+        "wall_4": 4 * z(0),
+        "cabinet": 1.0 + 2 * 1.0 * 1.2,     # top and the two faces open to the room
+        "air": 20.0 * z(2.5) - 1.0 * 1.0 * 1.2,  # prism volume = area x mean height
+    }
+    for name, value in expect.items():
+        assert m.region_measure(name) == pytest.approx(value, rel=REL), name
+    # every ceiling node lies on the ceiling plane
+    cn = m.points[np.unique(m.boundaries["ceiling"])]
+    assert np.allclose(cn[:, 2], z(cn[:, 0]), atol=1e-12)
+
+
+def test_column_is_curved_to_tolerance():
+    m = floor_plan(STUDIO, 2.5, fmax=70, obstacles=[Column("pillar", (2.0, 2.0), 0.25)])
+    # lateral area 2 pi r H and volume: the P2 (isoparametric) surface with
+    # ELEMENTS_PER_TURN = 12 edges per turn approximates the circle; the
+    # quadratic arc's error in the enclosed area is ~ (2 pi / 12)^4 / 720 per
+    # unit ~ 1e-4 relative; allow 2e-3 (meshing tolerance)
+    assert m.region_measure("pillar") == pytest.approx(2 * math.pi * 0.25 * 2.5, rel=2e-3)
+    assert m.region_measure("air") == pytest.approx(50.0 - math.pi * 0.25**2 * 2.5, rel=1e-4)
+    assert m.region_measure("floor") == pytest.approx(20.0 - math.pi * 0.25**2, rel=1e-4)
+
+
+def test_pressure_release_door_lowers_first_mode():
+    m = _studio(2, fmax=90)
+    rigid = solve_modes(m, order=2, count=12).frequencies
+    door = solve_modes(m, {"door": PressureRelease()}, order=2, count=12).frequencies
+    # rigid room: a 0 Hz mode; an open door gives the air a way out, so the
+    # lowest mode is a low "opening" mode, above 0 Hz but below the first
+    # nonzero rigid mode; and every mode rises or stays (a Dirichlet condition
+    # on part of the boundary only raises eigenvalues: min-max principle,
+    # Courant & Hilbert, Methods of Mathematical Physics vol. 1, ch. VI §2)
+    assert rigid[0] == 0.0
+    assert 0.0 < door[0] < rigid[1]
+    assert np.all(door >= rigid * (1 - 1e-9))
+
+
+@pytest.mark.slow
+def test_l_room_default_sizing_against_refined_reference():
+    # acceptance: every mode below fmax at the default sizing within 0.5 % of a
+    # reference on the same geometry with half the mesh size (P2); the
+    # refined mesh's own error is ~16x smaller (P2 eigenvalue error ~ h^4)
+    fmax = 90.0
+    coarse = floor_plan(L_ROOM, L_HEIGHT, fmax=fmax)
+    fine = floor_plan(L_ROOM, L_HEIGHT, fmax=2 * fmax)  # h halves
+    assert fine.h_max < 0.6 * coarse.h_max
+    fc = solve_modes(coarse, order=2, fmax=fmax).frequencies
+    ff = solve_modes(fine, order=2, fmax=fmax * 1.01).frequencies
+    assert len(ff) >= len(fc) >= 10  # none missing
+    rel = np.abs(fc[1:] / ff[1 : len(fc)] - 1.0)
+    assert rel.max() < 5e-3, rel.max()
+
+
+# --------------------------------------------------- other builders vs analytic
+def test_cylinder_builder_modes():
+    R, H, fmax = 0.6, 1.1, 380.0
+    m = cylinder(R, H, fmax=fmax)
+    assert m.surface_names == ("bottom", "side", "top")
+    assert m.region_measure("air") == pytest.approx(math.pi * R**2 * H, rel=1e-4)
+    # rigid closed cylinder, zeros of J_m' (Abramowitz & Stegun Table 9.5)
+    exact = analytic.cylinder_modes(R, H, c=Air().c, fmax=fmax).frequencies
+    fe = solve_modes(m, order=2, fmax=fmax * 1.02).frequencies
+    assert len(fe) >= len(exact)
+    assert np.abs(fe[1 : len(exact)] / exact[1:] - 1).max() < 5e-3
+
+
+def test_sphere_builder_modes():
+    R, fmax = 0.5, 500.0
+    m = sphere(R, fmax=fmax)
+    assert m.surface_names == ("shell",)
+    # rigid sphere, zeros of j_l' (Abramowitz & Stegun §10.1)
+    exact = analytic.sphere_modes(R, c=Air().c, fmax=fmax).frequencies
+    fe = solve_modes(m, order=2, fmax=fmax * 1.02).frequencies
+    assert len(fe) >= len(exact)
+    assert np.abs(fe[1 : len(exact)] / exact[1:] - 1).max() < 5e-3
+
+
+@pytest.mark.parametrize("order", [1, 2])
+def test_plan_builder_2d_rectangle(order):
+    size, fmax = (3.2, 2.1), 300.0
+    m = plan([(0, 0), (size[0], 0), size, (0, size[1])], fmax=fmax, order=order)
+    assert m.dim == 2 and m.surface_names == ("wall_1", "wall_2", "wall_3", "wall_4")
+    assert m.region_measure("air") == pytest.approx(size[0] * size[1], rel=REL)
+    assert m.region_measure("wall_2") == pytest.approx(size[1], rel=REL)
+    # rigid rectangle (Morse & Ingard 1968 §9.4 in 2D); wall_4 (x = 0) released
+    c = Air().c
+    exact = analytic.box_modes(size, c=c, walls={"x0": "pressure_release"}, fmax=fmax).frequencies
+    fe = solve_modes(m, {"wall_4": PressureRelease()}, order=order, fmax=fmax * 1.02).frequencies
+    assert len(fe) >= len(exact)
+    assert np.abs(fe[: len(exact)] / exact - 1).max() < 5e-3
+
+
+@pytest.mark.parametrize("order", [1, 2])
+def test_tube_builder(order):
+    L, fmax = 1.7, 800.0
+    m = tube(L, fmax=fmax, order=order)
+    assert m.dim == 1 and m.surface_names == ("x0", "x1")
+    # closed-open tube f = (2n+1) c / 4L (Kinsler et al., Fundamentals of Acoustics §10.2)
+    exact = analytic.tube_modes(L, c=Air().c, ends=("rigid", "pressure_release"), count=4)
+    fe = solve_modes(m, {"x1": PressureRelease()}, order=order, count=4).frequencies
+    assert np.abs(fe / exact - 1).max() < 5e-3
+
+
+_BAD_PARTS = [
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60, ceiling_slope=(-0.6, 0)), "vertex 2"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60, ceiling_slope=(0.1,)), "ceiling_slope"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60,
+                        obstacles=[Cuboid("crate", (4.5, 1, 0), (5.5, 2, 1))]), "'crate'"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60,
+                        obstacles=[Cuboid("crate", (1, 1, 0), (2, 2, 3.0))]), "outside the room"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60,
+                        obstacles=[Cuboid("crate", (2, 1, 0), (1, 2, 1))]), "hi=(1.0, 2.0, 1.0)"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60,
+                        obstacles=[Column("post", (4.9, 2.0), 0.3)]), "'post'"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60, obstacles=[Column("post", (2, 2), -0.3)]),
+     "radius=-0.3"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60, obstacles=["column"]), "Cuboid or a Column"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60, patches=[Patch("door", "wall_9", (0, 0), (1, 2))]),
+     "'wall_9'"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60, patches=[Patch("door", "wall_1", (4.5, 0), (5.5, 2))]),
+     "(5.5, 0)"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60, patches=[Patch("win", "wall_2", (1, 1), (2, 2.7))]),
+     "'win'"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60,
+                        patches=[Patch("a", "floor", (1, 1), (2, 2)), Patch("b", "floor", (1.5, 1.5), (3, 3))]),
+     "overlap"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60, patches=[Patch("floor", "wall_1", (1, 0), (2, 2))]),
+     "'floor' is already used"),
+    (lambda: floor_plan(STUDIO, 2.5, fmax=60, patches=[Patch("door", "wall_1", (1, 0), (2, 2))],
+                        obstacles=[Cuboid("door", (1, 1, 0), (2, 2, 1))]), "'door' is already used"),
+    (lambda: cylinder(0.0, 1.0, fmax=100), "radius=0.0"),
+    (lambda: sphere(-1.0, fmax=100), "radius=-1.0"),
+    (lambda: tube(1.0, fmax=0), "fmax=0"),
+    (lambda: plan([(0, 0), (1, 1)], fmax=100), "at least 3"),
+]
+
+
+@pytest.mark.parametrize("call, text", _BAD_PARTS, ids=[t for _, t in _BAD_PARTS])
+def test_bad_parts(call, text, monkeypatch):
+    import gmsh
+
+    def _no_gmsh(*a, **k):
+        raise AssertionError("gmsh was called before the input was validated")
+
+    monkeypatch.setattr(gmsh, "initialize", _no_gmsh)
+    monkeypatch.setattr(gmsh, "isInitialized", _no_gmsh)
+    with pytest.raises(InputError) as info:
+        call()
+    assert text in str(info.value)
