@@ -31,7 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ._errors import InputError
+from ._errors import InputError, UnknownSurfaceError
 from .air import Air
 from .mesh import Mesh
 
@@ -227,14 +227,37 @@ def _com(dim, tag):
     return gmsh.model.occ.getCenterOfMass(dim, tag)
 
 
-def _mesh_with_gmsh(model_name, build, classify, names, h, order, dim=3, budget=None):
+def _refinement(refine, names):
+    """Validated {surface name: local mesh size in m} (names from ``names``)."""
+    if refine is None:
+        return {}
+    if not isinstance(refine, dict):
+        raise InputError(
+            f"refine={refine!r} must map surface names to local mesh sizes in metres, "
+            "e.g. refine={'door': 0.1}."
+        )
+    out = {}
+    for name, size in refine.items():
+        if name not in names:
+            raise UnknownSurfaceError(
+                f"refine names surface {name!r}, which this room does not have; its surfaces "
+                f"are {sorted(names)}."
+            )
+        out[name] = _number(f"refine[{name!r}]", size, "m", "give a local mesh size in metres")
+    return out
+
+
+def _mesh_with_gmsh(model_name, build, classify, names, h, order, dim=3, budget=None,
+                    refine=None):
     """Run gmsh and return the Mesh.
 
     ``build(occ)`` makes the domain (entities of dimension ``dim``) and may
     return a dict {boundary entity tag: name} for faces it named itself
     (patches imprinted by a fragment); every other boundary entity is named
     by ``classify(cx, cy, cz)`` from its centre of mass.  ``names`` lists
-    every name that must receive at least one entity.  ``budget`` (a callable
+    every name that must receive at least one entity; ``refine`` maps some of
+    them to a smaller local mesh size (set on the points of those surfaces,
+    from which gmsh grades the size smoothly).  ``budget`` (a callable
     of the domain's measure) runs after the geometry exists and before any
     meshing, so an oversized model is refused cheaply.
     """
@@ -278,8 +301,12 @@ def _mesh_with_gmsh(model_name, build, classify, names, h, order, dim=3, budget=
         for name, tags in groups.items():
             gmsh.model.addPhysicalGroup(dim - 1, tags, name=name)
         gmsh.model.addPhysicalGroup(dim, [t for _, t in doms], name="air")
+        for name, size in (refine or {}).items():
+            pts = gmsh.model.getBoundary([(dim - 1, t) for t in groups[name]], combined=False,
+                                         oriented=False, recursive=True)
+            gmsh.model.mesh.setSize(pts, min(size, h))
         gmsh.option.setNumber("Mesh.MeshSizeMax", h)
-        gmsh.option.setNumber("Mesh.MeshSizeMin", 0.3 * h)
+        gmsh.option.setNumber("Mesh.MeshSizeMin", min([0.3 * h, *(refine or {}).values()]))
         gmsh.option.setNumber("Mesh.MeshSizeFromCurvature", ELEMENTS_PER_TURN)
         gmsh.option.setNumber("Mesh.Algorithm3D", 10)
         gmsh.model.mesh.generate(dim)
@@ -307,7 +334,7 @@ def _mesh_with_gmsh(model_name, build, classify, names, h, order, dim=3, budget=
     return mesh
 
 
-def box(size, *, fmax, order=2, air=None) -> Mesh:
+def box(size, *, fmax, order=2, air=None, refine=None) -> Mesh:
     """Mesh of the rectangular room [0, Lx] x [0, Ly] x [0, Lz].
 
     Parameters
@@ -325,6 +352,8 @@ def box(size, *, fmax, order=2, air=None) -> Mesh:
         edge midpoints) or 1.
     air : Air, optional
         Air whose speed of sound sets the mesh size (default ``Air()``).
+    refine : mapping of face name -> mesh size in m, optional
+        Local refinement on those faces (e.g. ``{"z0": 0.1}``).
 
     Returns
     -------
@@ -345,6 +374,7 @@ def box(size, *, fmax, order=2, air=None) -> Mesh:
     order = _order(order)
     lengths = np.array(L)
     tol = 1e-7 * lengths.max()
+    refine = _refinement(refine, BOX_FACES)
 
     def build(occ):
         occ.addBox(0.0, 0.0, 0.0, *L)
@@ -358,7 +388,8 @@ def box(size, *, fmax, order=2, air=None) -> Mesh:
         ax = int(np.flatnonzero(lo | hi)[0])
         return "xyz"[ax] + ("0" if lo[ax] else "1")
 
-    return _mesh_with_gmsh("acoustic_fem_box", build, classify, BOX_FACES, h, order)
+    return _mesh_with_gmsh("acoustic_fem_box", build, classify, BOX_FACES, h, order,
+                           refine=refine)
 
 
 @dataclass(frozen=True)
@@ -545,7 +576,7 @@ class _Ceiling:
 
 
 def floor_plan(polygon, height, *, fmax, order=2, air=None, ceiling_slope=None,
-               obstacles=(), patches=()) -> Mesh:
+               obstacles=(), patches=(), refine=None) -> Mesh:
     """Mesh of a room with a polygonal floor and a flat or sloped planar ceiling.
 
     The floor outline ``polygon`` (in the plane z = 0) is closed by vertical
@@ -581,6 +612,9 @@ def floor_plan(polygon, height, *, fmax, order=2, air=None, ceiling_slope=None,
     patches : sequence of Patch
         Rectangles on the floor, ceiling or a wall that become surfaces of their
         own (the rest of the host surface keeps its name).
+    refine : mapping of surface name -> mesh size in m, optional
+        Local refinement: a smaller element size on those surfaces (e.g.
+        ``{"door": 0.1}``), graded into the rest of the mesh.
 
     Returns
     -------
@@ -625,6 +659,7 @@ def floor_plan(polygon, height, *, fmax, order=2, air=None, ceiling_slope=None,
     obstacles, patches = tuple(obstacles), tuple(patches)
     _check_parts(P, ceil, top, base, obstacles, patches, tol)
     names = (*base, *(o.name for o in obstacles), *(p.name for p in patches))
+    refine = _refinement(refine, names)
 
     def build(occ):
         bot = [occ.addPoint(float(x), float(y), 0.0) for x, y in P]
@@ -672,7 +707,8 @@ def floor_plan(polygon, height, *, fmax, order=2, air=None, ceiling_slope=None,
         raise RuntimeError(  # pragma: no cover - every face belongs to one of the above
             f"floor_plan: unclassified face at ({cx}, {cy}, {cz})")
 
-    return _mesh_with_gmsh("acoustic_fem_floor_plan", build, classify, names, h, order)
+    return _mesh_with_gmsh("acoustic_fem_floor_plan", build, classify, names, h, order,
+                           refine=refine)
 
 
 def _check_name(name, taken, where):

@@ -381,3 +381,34 @@ def test_bad_parts(call, text, monkeypatch):
     with pytest.raises(InputError) as info:
         call()
     assert text in str(info.value)
+
+
+def test_local_refinement_and_save_load_round_trip(tmp_path):
+    from acoustic_fem import read_mesh, write_mesh
+    from acoustic_fem.assembly import facet_measures
+
+    coarse = _studio(2)
+    fine = _studio(2, refine={"door": 0.08})
+    # local refinement: the door's facets shrink to about the asked size (mean
+    # facet area of a right-isoceles-ish triangle of side 0.08 m ~ 0.0028 m^2,
+    # allow a factor 2), far from the door the mesh stays as it was
+    assert facet_measures(fine, "door").mean() < 2 * 0.08**2
+    assert facet_measures(coarse, "door").mean() > 4 * facet_measures(fine, "door").mean()
+    assert facet_measures(fine, "wall_3").mean() == pytest.approx(
+        facet_measures(coarse, "wall_3").mean(), rel=0.5)
+    # save and load (.msh) keeps every name and every cell
+    path = write_mesh(tmp_path / "studio.msh", fine)
+    back = read_mesh(path)
+    assert back.surface_names == fine.surface_names and back.volume_names == ("air",)
+    assert np.array_equal(back.cells, fine.cells) and np.allclose(back.points, fine.points)
+    for name in fine.surface_names:
+        assert back.region_measure(name) == pytest.approx(fine.region_measure(name), rel=1e-12)
+
+
+def test_refine_names_checked():
+    from acoustic_fem import UnknownSurfaceError
+
+    with pytest.raises(UnknownSurfaceError, match="'dor'.*'door'"):
+        _studio(2, refine={"dor": 0.1})
+    with pytest.raises(InputError, match=r"refine\['z0'\]=0"):
+        box((2, 2, 2), fmax=100, refine={"z0": 0})
