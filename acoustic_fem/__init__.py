@@ -19,7 +19,13 @@ from .assembly import Assembly, assemble, boundary_mass
 from .dofs import DofMap
 from .elements import CellType
 from .export import write_modes_csv, write_vtk
-from .impedance import Impedance
+from .impedance import (
+    Impedance,
+    Incidence,
+    PorousModel,
+    absorption_coefficient,
+    impedance_from_absorption,
+)
 from .mesh import Mesh, MeshWarning
 from .mesh_io import from_meshio, read_mesh, write_mesh
 from .modes import Modes, ResolutionWarning, solve_modes
@@ -33,5 +39,6 @@ __all__ = [
     "SolverError", "UnknownSurfaceError", "OutputExistsError", "MeshWarning",
     "Air", "Assembly", "assemble", "boundary_mass", "DofMap", "CellType", "Mesh",
     "read_mesh", "write_mesh", "from_meshio", "Modes", "solve_modes", "ResolutionWarning",
-    "Rigid", "PressureRelease", "Wall", "Impedance", "write_vtk", "write_modes_csv", "analytic", "geometry",
+    "Rigid", "PressureRelease", "Wall", "Impedance", "Incidence", "PorousModel",
+    "absorption_coefficient", "impedance_from_absorption", "write_vtk", "write_modes_csv", "analytic", "geometry",
 ]
