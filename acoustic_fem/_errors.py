@@ -15,6 +15,7 @@ __all__ = [
     "MeshError",
     "MeshReadError",
     "UnknownSurfaceError",
+    "ModelTooLargeError",
     "SolverError",
     "ConvergenceError",
 ]
@@ -41,6 +42,23 @@ class UnknownSurfaceError(InputError, KeyError):
 
     def __str__(self) -> str:  # KeyError would quote the message
         return str(self.args[0]) if self.args else ""
+
+
+class ModelTooLargeError(InputError):
+    """A model's estimated memory exceeds the budget; refused before meshing.
+
+    Attributes
+    ----------
+    estimate : CostEstimate or None
+        The estimate that was refused (predicted cells, DOFs, bytes).
+    budget : int or None
+        The memory budget in bytes it was compared with.
+    """
+
+    def __init__(self, message: str, estimate=None, budget=None):
+        super().__init__(message)
+        self.estimate = estimate
+        self.budget = budget
 
 
 class SolverError(AcousticFemError, RuntimeError):

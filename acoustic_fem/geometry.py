@@ -227,6 +227,19 @@ def _com(dim, tag):
     return gmsh.model.occ.getCenterOfMass(dim, tag)
 
 
+def _check_budget(volume, area, *, fmax, order, air, memory_budget):
+    """Refuse, before any meshing, a 3D model whose estimated memory exceeds the budget.
+
+    ``memory_budget`` in bytes (default: the memory available on this
+    machine; ``math.inf`` turns the check off).  Raises ModelTooLargeError
+    with the predicted cells, DOFs and memory and what to change.
+    """
+    from ._cost import check_memory, estimate_cost
+
+    check_memory(estimate_cost(volume, area, fmax=fmax, order=order, air=air),
+                 budget=memory_budget)
+
+
 def _refinement(refine, names):
     """Validated {surface name: local mesh size in m} (names from ``names``)."""
     if refine is None:
@@ -334,7 +347,7 @@ def _mesh_with_gmsh(model_name, build, classify, names, h, order, dim=3, budget=
     return mesh
 
 
-def box(size, *, fmax, order=2, air=None, refine=None) -> Mesh:
+def box(size, *, fmax, order=2, air=None, refine=None, memory_budget=None) -> Mesh:
     """Mesh of the rectangular room [0, Lx] x [0, Ly] x [0, Lz].
 
     Parameters
@@ -354,6 +367,10 @@ def box(size, *, fmax, order=2, air=None, refine=None) -> Mesh:
         Air whose speed of sound sets the mesh size (default ``Air()``).
     refine : mapping of face name -> mesh size in m, optional
         Local refinement on those faces (e.g. ``{"z0": 0.1}``).
+    memory_budget : float, optional
+        Bytes a solve of this model may use; the estimate
+        (:func:`acoustic_fem.estimate_cost`) is checked before meshing.
+        Default: the memory available on this machine; ``math.inf`` disables.
 
     Returns
     -------
@@ -368,6 +385,8 @@ def box(size, *, fmax, order=2, air=None, refine=None) -> Mesh:
     InputError
         A size entry not positive and finite, fmax not positive and finite,
         order not 1 or 2, or air not an :class:`Air`.
+    ModelTooLargeError
+        The estimated memory of a solve exceeds ``memory_budget``.
     """
     L = _box_size(size)
     h = mesh_size(fmax, order=order, air=air)
@@ -375,6 +394,9 @@ def box(size, *, fmax, order=2, air=None, refine=None) -> Mesh:
     lengths = np.array(L)
     tol = 1e-7 * lengths.max()
     refine = _refinement(refine, BOX_FACES)
+    Lx, Ly, Lz = L
+    _check_budget(Lx * Ly * Lz, 2 * (Lx * Ly + Ly * Lz + Lx * Lz), fmax=fmax, order=order,
+                  air=air, memory_budget=memory_budget)
 
     def build(occ):
         occ.addBox(0.0, 0.0, 0.0, *L)
@@ -576,7 +598,7 @@ class _Ceiling:
 
 
 def floor_plan(polygon, height, *, fmax, order=2, air=None, ceiling_slope=None,
-               obstacles=(), patches=(), refine=None) -> Mesh:
+               obstacles=(), patches=(), refine=None, memory_budget=None) -> Mesh:
     """Mesh of a room with a polygonal floor and a flat or sloped planar ceiling.
 
     The floor outline ``polygon`` (in the plane z = 0) is closed by vertical
@@ -615,6 +637,9 @@ def floor_plan(polygon, height, *, fmax, order=2, air=None, ceiling_slope=None,
     refine : mapping of surface name -> mesh size in m, optional
         Local refinement: a smaller element size on those surfaces (e.g.
         ``{"door": 0.1}``), graded into the rest of the mesh.
+    memory_budget : float, optional
+        Bytes a solve may use, checked against the estimate before meshing
+        (default: the memory available; ``math.inf`` disables).
 
     Returns
     -------
@@ -632,6 +657,8 @@ def floor_plan(polygon, height, *, fmax, order=2, air=None, ceiling_slope=None,
         that meets the floor, an obstacle or patch outside its room or
         surface, overlapping patches, clashing names, order not 1 or 2, or
         air not an :class:`Air`.
+    ModelTooLargeError
+        The estimated memory of a solve exceeds ``memory_budget``.
     """
     P = _polygon(polygon)
     H = _number("height", height, "m", "give the ceiling height, e.g. height=2.8")
@@ -660,6 +687,18 @@ def floor_plan(polygon, height, *, fmax, order=2, air=None, ceiling_slope=None,
     _check_parts(P, ceil, top, base, obstacles, patches, tol)
     names = (*base, *(o.name for o in obstacles), *(p.name for p in patches))
     refine = _refinement(refine, names)
+    # volume under a planar ceiling = floor area x ceiling height at the
+    # floor's centroid; area: floor + inclined ceiling + walls (trapezoids)
+    x, y = P[:, 0], P[:, 1]
+    xn, yn = np.roll(x, -1), np.roll(y, -1)
+    cross = x * yn - xn * y
+    a_floor = 0.5 * abs(cross.sum())
+    cx, cy = (x + xn) @ cross / (3 * cross.sum()), (y + yn) @ cross / (3 * cross.sum())
+    g = ceil.g
+    walls_area = float(np.sum(np.hypot(xn - x, yn - y) * 0.5 * (zc + np.roll(zc, -1))))
+    _check_budget(a_floor * float(ceil.z(cx, cy)),
+                  a_floor * (1 + math.hypot(*g) ** 2) ** 0.5 + a_floor + walls_area,
+                  fmax=fmax, order=order, air=air, memory_budget=memory_budget)
 
     def build(occ):
         bot = [occ.addPoint(float(x), float(y), 0.0) for x, y in P]
@@ -815,14 +854,14 @@ def _closest_on_segments(p, A, B):
     return A + t[:, None] * ab
 
 
-def cylinder(radius, height, *, fmax, order=2, air=None) -> Mesh:
+def cylinder(radius, height, *, fmax, order=2, air=None, memory_budget=None) -> Mesh:
     """Mesh of the circular cylinder r <= radius, 0 <= z <= height.
 
     Parameters
     ----------
     radius, height : float
         In metres, positive.
-    fmax, order, air
+    fmax, order, air, memory_budget
         As for :func:`box`.  Order 2 places the mid-edge nodes on the true
         curved surface (isoparametric cells).
 
@@ -837,6 +876,8 @@ def cylinder(radius, height, *, fmax, order=2, air=None) -> Mesh:
     h = mesh_size(fmax, order=order, air=air)
     order = _order(order)
     tol = 1e-7 * max(R, H)
+    _check_budget(math.pi * R**2 * H, 2 * math.pi * R * (R + H), fmax=fmax, order=order, air=air,
+                  memory_budget=memory_budget)
 
     def build(occ):
         occ.addCylinder(0.0, 0.0, 0.0, 0.0, 0.0, H, R)
@@ -852,8 +893,10 @@ def cylinder(radius, height, *, fmax, order=2, air=None) -> Mesh:
                            h, order)
 
 
-def sphere(radius, *, fmax, order=2, air=None) -> Mesh:
+def sphere(radius, *, fmax, order=2, air=None, memory_budget=None) -> Mesh:
     """Mesh of the ball of the given radius centred at the origin.
+
+    ``fmax``, ``order``, ``air`` and ``memory_budget`` as for :func:`box`.
 
     Returns
     -------
@@ -864,6 +907,8 @@ def sphere(radius, *, fmax, order=2, air=None) -> Mesh:
     R = _number("radius", radius, "m", "give the sphere's radius")
     h = mesh_size(fmax, order=order, air=air)
     order = _order(order)
+    _check_budget(4 / 3 * math.pi * R**3, 4 * math.pi * R**2, fmax=fmax, order=order, air=air,
+                  memory_budget=memory_budget)
 
     def build(occ):
         occ.addSphere(0.0, 0.0, 0.0, R)

@@ -412,3 +412,26 @@ def test_refine_names_checked():
         _studio(2, refine={"dor": 0.1})
     with pytest.raises(InputError, match=r"refine\['z0'\]=0"):
         box((2, 2, 2), fmax=100, refine={"z0": 0})
+
+
+@pytest.mark.parametrize("call", [
+    lambda b: box((12.0, 9.0, 5.0), fmax=300, memory_budget=b),
+    lambda b: floor_plan(L_ROOM, L_HEIGHT, fmax=400, ceiling_slope=(0.05, 0.0), memory_budget=b),
+    lambda b: cylinder(3.0, 4.0, fmax=500, memory_budget=b),
+    lambda b: sphere(3.0, fmax=500, memory_budget=b),
+], ids=["box", "floor_plan", "cylinder", "sphere"])
+def test_memory_budget_refused_before_meshing(call, monkeypatch):
+    import gmsh
+
+    from acoustic_fem import ModelTooLargeError
+
+    def _no_gmsh(*a, **k):
+        raise AssertionError("gmsh was called before the budget check")
+
+    monkeypatch.setattr(gmsh, "initialize", _no_gmsh)
+    monkeypatch.setattr(gmsh, "isInitialized", _no_gmsh)
+    with pytest.raises(ModelTooLargeError) as info:
+        call(2e9)  # a 2 GB budget; each model needs far more (estimate_cost)
+    msg = str(info.value)
+    assert "DOFs" in msg and "memory_budget" in msg and "lower fmax" in msg
+    assert info.value.estimate.peak_bytes > 2e9
