@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import enum
 import math
 import numbers
 import time
@@ -12,15 +13,18 @@ from typing import Mapping
 
 import numpy as np
 
+from . import _damped
 from ._eigen import solve_generalized
-from ._errors import InputError
+from ._errors import ConvergenceError, InputError
 from .air import Air
-from .assembly import Assembly, assemble, facet_measures
+from .assembly import Assembly, assemble, boundary_mass, facet_measures
 from .dofs import DofMap
+from .impedance import Impedance
 from .mesh import Mesh
 from .walls import Wall, resolve_walls
 
-__all__ = ["Modes", "solve_modes", "ResolutionWarning", "MIN_ELEMENTS_PER_WAVELENGTH"]
+__all__ = ["Modes", "solve_modes", "DampingMethod", "ResolutionWarning",
+           "MIN_ELEMENTS_PER_WAVELENGTH"]
 
 #: Elements (mean edge lengths) per wavelength below which the frequency error
 #: is likely to exceed about 1 %: from the 1D dispersion of consistent-mass
@@ -34,6 +38,22 @@ class ResolutionWarning(UserWarning):
     """The mesh is too coarse for the highest frequency asked for."""
 
 
+class DampingMethod(str, enum.Enum):
+    """How :func:`solve_modes` treats absorbing (:class:`Impedance`) walls.
+
+    EXACT
+        Solve the quadratic eigenproblem (K + ikC - k²M) x = 0 (β of a
+        frequency-dependent wall at each mode's own frequency).
+    PERTURBATION
+        Rigid-wall modes with the first-order decay rate
+        δ = (c/2) Σ Re β_s ∫_s φ² dS and frequency shift
+        -(c/4π) Σ Im β_s ∫_s φ² dS (fast; accurate for small β).
+    """
+
+    EXACT = "exact"
+    PERTURBATION = "perturbation"
+
+
 @dataclass(frozen=True, eq=False)
 class Modes:
     """Eigenmodes of an enclosure.
@@ -42,25 +62,40 @@ class Modes:
     ----------
     frequencies : (n_modes,) float array
         Eigenfrequencies in Hz, ascending.  A room whose walls are all rigid
-        has a 0 Hz mode (uniform pressure): it is mode 0.
-    eigenvalues : (n_modes,) float array
-        The Helmholtz eigenvalues k² in 1/m² (k = 2πf/c).
-    shapes : (n_dofs, n_modes) float array
-        Mode shapes, real and mass-normalised: ``shapes.T @ M @ shapes = I``
-        with M the mass matrix of the space (so ∫ p_i p_j dV = δ_ij).
-        Zero on pressure-release surfaces.
+        has a 0 Hz mode (uniform pressure): it is mode 0.  With absorbing
+        walls, f = c |Re k| / (2π); a room without pressure-release surfaces
+        then keeps that mode as mode 0, an (almost) aperiodic decay with
+        f ≈ 0 (see :mod:`acoustic_fem._damped`).
+    eigenvalues : (n_modes,) float or complex array
+        The Helmholtz eigenvalues k² in 1/m² (k = 2πf/c): real for rigid and
+        pressure-release walls, complex (k² of the complex wavenumber) with
+        absorbing walls.
+    shapes : (n_dofs, n_modes) float or complex array
+        Mode shapes.  Rigid and pressure-release walls: real and
+        mass-normalised, ``shapes.T @ M @ shapes = I`` with M the mass matrix
+        of the space (so ∫ p_i p_j dV = δ_ij).  Absorbing walls: complex,
+        scaled so that ``shapes[:, j] @ M @ shapes[:, j] = 1`` (the bilinear,
+        unconjugated form natural to the complex symmetric problem; they
+        tend to the real ones as β -> 0), with the entry of largest modulus
+        having a positive real part.  Zero on pressure-release surfaces.
     points : (n_dofs, dim) float array
         Coordinates of the degrees of freedom (rows), dim = mesh dimension.
     decay_rates : (n_modes,) float array
-        Decay rate δ in 1/s of each mode (pressure ∝ e^{-δt}); zero for
-        rigid and pressure-release walls, which absorb nothing.
+        Decay rate δ = c Im k in 1/s of each mode (pressure ∝ e^{-δt}); zero
+        for rigid and pressure-release walls, which absorb nothing.
+    wavenumbers : (n_modes,) float or complex array
+        k in 1/m (p ∝ e^{ickt}, time convention e^{+iωt}): √eigenvalues for
+        undamped modes; the complex root of the quadratic problem with
+        absorbing walls (Re k >= 0 except possibly for mode 0).
     dofs : DofMap
         DOF numbering (mesh, order, cell-to-DOF map) for export and reuse.
     air : Air
     walls : mapping str -> Wall
         The wall condition of every surface.
     info : mapping
-        What the solver did: backend, shift windows, timings.
+        What the solver did: backend, shift windows, timings; with absorbing
+        walls also the damping method, the shift height τ, the reference
+        frequency and the refinement of frequency-dependent walls.
     """
 
     frequencies: np.ndarray
@@ -71,13 +106,21 @@ class Modes:
     walls: Mapping[str, Wall]
     decay_rates: np.ndarray = None  # type: ignore[assignment]
     info: Mapping = field(default_factory=dict)
+    wavenumbers: np.ndarray = None  # type: ignore[assignment]
 
     def __post_init__(self) -> None:
         n = len(self.frequencies)
         if self.decay_rates is None:
             object.__setattr__(self, "decay_rates", np.zeros(n))
-        for name in ("frequencies", "eigenvalues", "shapes", "decay_rates"):
-            a = np.array(getattr(self, name), dtype=float)
+        if self.wavenumbers is None:
+            lam = np.asarray(self.eigenvalues)
+            k = (np.sqrt(lam.astype(complex)) if np.iscomplexobj(lam)
+                 else np.sqrt(np.clip(lam.astype(float), 0.0, None)))
+            object.__setattr__(self, "wavenumbers", k)
+        for name in ("frequencies", "eigenvalues", "shapes", "decay_rates", "wavenumbers"):
+            a = np.asarray(getattr(self, name))
+            real_only = name in ("frequencies", "decay_rates")
+            a = np.array(a, dtype=complex if (np.iscomplexobj(a) and not real_only) else float)
             a.setflags(write=False)
             object.__setattr__(self, name, a)
         object.__setattr__(self, "walls", MappingProxyType(dict(self.walls)))
@@ -176,6 +219,30 @@ def _weyl_count(mesh: Mesh, k: float, fixed_area: float, total_area: float) -> f
     return V * k / math.pi + 1
 
 
+def _check_damping(value) -> DampingMethod:
+    try:
+        return DampingMethod(value)
+    except ValueError:
+        raise InputError(
+            f"damping={value!r} is not an option; use 'exact' (the quadratic eigenproblem of "
+            "the absorbing walls) or 'perturbation' (rigid-wall modes with first-order decay)."
+        ) from None
+
+
+def _weyl_k(mesh, n, fixed_area, total_area) -> float:
+    """Wavenumber below which Weyl's law expects n modes (bisection)."""
+    lo, hi = 0.0, 1.0
+    while _weyl_count(mesh, hi, fixed_area, total_area) < n and hi < 1e8:
+        hi *= 2.0
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        if _weyl_count(mesh, mid, fixed_area, total_area) < n:
+            lo = mid
+        else:
+            hi = mid
+    return hi
+
+
 def solve_modes(
     mesh: Mesh,
     walls: Mapping[str, Wall] | None = None,
@@ -186,16 +253,21 @@ def solve_modes(
     air: Air | None = None,
     backend: str = "auto",
     assembly: Assembly | None = None,
+    damping: str | DampingMethod = DampingMethod.EXACT,
 ) -> Modes:
     """Eigenfrequencies and mode shapes of the air in an enclosure.
 
     Solves the Helmholtz eigenproblem ∇²p + k²p = 0 with the wall conditions
-    by Lagrange finite elements: K x = k² M x.
+    by Lagrange finite elements: K x = k² M x.  With absorbing walls
+    (:class:`~acoustic_fem.Impedance`, ∂p/∂n = -ikβp, time convention
+    e^{+iωt}) the problem becomes quadratic, (K + ik Σ_s β_s B_s - k² M) x = 0,
+    with complex roots k: frequency c |Re k|/(2π), decay rate δ = c Im k
+    (see :mod:`acoustic_fem._damped` for the method and the choices made).
 
     Parameters
     ----------
     mesh : Mesh
-    walls : mapping of surface name -> Rigid() / PressureRelease(), optional
+    walls : mapping of surface name -> Rigid() / PressureRelease() / Impedance(...), optional
         Surfaces not named are rigid.
     order : int
         Element order, 1 or 2 (default 2: far more accurate per DOF).
@@ -210,12 +282,28 @@ def solve_modes(
         Sparse factorisation used for the shifts.
     assembly : Assembly, optional
         Matrices from :func:`assemble` of the same mesh and order, to reuse.
+    damping : DampingMethod or {"exact", "perturbation"}
+        Used only when a wall is an Impedance.  "exact" (default) solves the
+        quadratic (for frequency-dependent walls: nonlinear) eigenproblem;
+        "perturbation" returns the rigid-wall modes with first-order complex
+        wavenumbers (fast, accurate for |β| << 1; β of a frequency-dependent
+        wall taken at the rigid frequency).  A frequency-dependent β is never
+        evaluated below 1 % of c/(2 × the mesh's largest extent), which sets
+        the uniform mode's admittance.
 
     Returns
     -------
     Modes
         ``frequencies`` (n_modes,), ``shapes`` (n_dofs, n_modes),
-        ``points`` (n_dofs, dim).
+        ``points`` (n_dofs, dim); complex ``shapes``, ``eigenvalues`` and
+        ``wavenumbers`` and nonzero ``decay_rates`` with absorbing walls.
+
+    Raises
+    ------
+    InputError
+        A bad argument (the message names it).
+    ConvergenceError
+        Some modes did not converge; ``partial`` holds those that did.
     """
     t0 = time.perf_counter()
     if not isinstance(mesh, Mesh):
@@ -232,6 +320,7 @@ def solve_modes(
             "say how many modes: give count= (the lowest N modes) or fmax= (every mode up to "
             "fmax Hz)."
         )
+    damping = _check_damping(damping)
     air = Air() if air is None else air
     if not isinstance(air, Air):
         raise InputError(f"air must be an acoustic_fem Air, got {air!r}.")
@@ -277,6 +366,16 @@ def solve_modes(
                                                  total_area) + 8))
     else:
         n_est = count
+
+    absorbing = [n for n, w in full_walls.items() if isinstance(w, Impedance)
+                 and not (not w.frequency_dependent and w.constant_admittance == 0)]
+    if absorbing:
+        return _solve_damped(
+            mesh, full_walls, absorbing, dofs, free, K, M, air, count=count, fmax=fmax,
+            lam_guess=lam_guess, extent=extent, n_est=n_est, fixed_area=fixed_area,
+            total_area=total_area, backend=backend, damping=damping, t0=t0, t_asm=t_asm,
+        )
+
     lam, X, rep = solve_generalized(
         K, M, count=count, lam_max=lam_max, lam_guess=lam_guess, n_estimate=n_est,
         backend=backend,
@@ -296,3 +395,122 @@ def solve_modes(
         total_seconds=time.perf_counter() - t0,
     )
     return Modes(freq, lam, shapes, dofs, air, full_walls, info=info)
+
+
+def _solve_damped(mesh, full_walls, absorbing, dofs, free, K, M, air, *, count, fmax,
+                  lam_guess, extent, n_est, fixed_area, total_area, backend, damping, t0,
+                  t_asm):
+    """The absorbing-wall branch of :func:`solve_modes` (arguments as computed there)."""
+    t_eig = time.perf_counter()
+    terms = [_damped.WallTerm(name, full_walls[name],
+                              boundary_mass(dofs, name)[free][:, free].tocsr())
+             for name in absorbing]
+    f_floor = 0.01 * air.c / (2.0 * extent)
+    pencil = _damped.Pencil(K, M, terms, air, f_floor)
+    has_static = free.size == dofs.n_dofs
+    kmax = None if fmax is None else 2 * math.pi * fmax / air.c
+    freq_dep = pencil.frequency_dependent
+    info = dict(n_dofs=int(dofs.n_dofs), n_free_dofs=int(free.size), order=dofs.order,
+                assembly_seconds=t_asm, damping=damping.value,
+                absorbing_surfaces=list(absorbing))
+
+    # candidates: a margin past fmax / count when β depends on frequency (the
+    # refinement moves the modes) or for the first-order shifts
+    margin = freq_dep or damping is DampingMethod.PERTURBATION
+    c_count = None if count is None else (count + max(4, math.ceil(0.15 * count)) if margin
+                                          else count)
+    c_kmax = None if kmax is None else (1.1 * kmax if margin else kmax)
+    c_est = n_est if kmax is None else max(n_est, int(math.ceil(1.1**mesh.dim * n_est)))
+
+    if damping is DampingMethod.PERTURBATION:
+        lam, Phi, rep = solve_generalized(
+            K, M, count=c_count, lam_max=None if c_kmax is None else c_kmax**2,
+            lam_guess=lam_guess, n_estimate=c_est, backend=backend)
+        lam = np.where(np.abs(lam) < 1e-10 * max(lam_guess, 1.0), 0.0, lam)
+        ks, X, zero = _damped.first_order(pencil, lam, Phi)
+        bad = np.zeros(ks.size, dtype=bool)
+        info.update(method="rigid modes (" + rep.method + ") + first-order perturbation",
+                    windows=rep.windows)
+    else:
+        if freq_dep:
+            if fmax is not None:
+                f_ref = 0.5 * fmax
+            else:
+                k_c = _weyl_k(mesh, count, fixed_area, total_area)
+                f_ref = 0.5 * air.c * k_c / (2 * math.pi)
+            f_ref = max(f_ref, f_floor)
+        else:
+            f_ref = f_floor  # any: β is constant
+        beta_ref = pencil.betas(np.array([f_ref]))[:, 0]
+        ones = np.ones(free.size)
+        vol = float(ones @ (M @ ones))
+        c00 = complex(sum(b * float(ones @ (t.B @ ones)) for b, t in zip(beta_ref, terms)) / vol)
+        tau = max(math.sqrt(0.1 * lam_guess), 2.5 * abs(c00))
+        try:
+            lin = _damped.solve_linear(pencil, beta_ref, count=c_count, kmax=c_kmax,
+                                       n_estimate=c_est, tau=tau, has_static=has_static,
+                                       backend=backend)
+        except ConvergenceError as exc:
+            ks_p, X_p = exc.partial
+            zero_p = np.zeros(ks_p.size, dtype=bool)
+            partial = _damped_modes(pencil, ks_p, X_p, zero_p, dofs, free, air, full_walls,
+                                    dict(info, note="partial"))
+            raise ConvergenceError(str(exc), partial=partial) from None
+        ks, X, zero = lin.ks, lin.X, lin.zero_mode
+        info.update(method=lin.method, windows=lin.windows, shift_height_tau=tau,
+                    reference_frequency_hz=f_ref if freq_dep else None)
+        betas = np.repeat(beta_ref[:, None], ks.size, axis=1)
+        res = pencil.residuals(ks, X, betas)
+        bad = res > _damped.RESIDUAL_TOL
+        if freq_dep and ks.size:
+            ks, X, res, rinfo = _damped.refine_nonlinear(pencil, ks, X,
+                                                         lin.first_solver.precondition)
+            bad = res > _damped.REFINE_TOL
+            info["refinement"] = rinfo
+        info["max_backward_error"] = float(res.max()) if res.size else 0.0
+        if ks.size and float(ks.imag.max()) > 2.0 * tau:
+            warnings.warn(
+                f"a mode decays faster (Im k = {float(ks.imag.max()):.3g} 1/m) than the "
+                f"strip 0 <= Im k <= 2τ = {2 * tau:.3g} 1/m in which the damped solver "
+                "guarantees to find every mode; strongly damped modes may be missing. "
+                "Check with damping='perturbation' or fewer absorbing surfaces.",
+                stacklevel=3,
+            )
+
+    # order by frequency and select
+    freq = pencil.frequency(ks)
+    o = np.argsort(freq, kind="stable")
+    ks, X, zero, bad, freq = ks[o], X[:, o], zero[o], bad[o], freq[o]
+    sel = np.ones(ks.size, dtype=bool) if fmax is None else freq <= fmax
+    idx = np.flatnonzero(sel)
+    if count is not None:
+        idx = idx[:count]
+    ks, X, zero, bad = ks[idx], X[:, idx], zero[idx], bad[idx]
+    info["eigen_seconds"] = time.perf_counter() - t_eig
+    info["total_seconds"] = time.perf_counter() - t0
+    if bad.any():
+        good = ~bad
+        partial = _damped_modes(pencil, ks[good], X[:, good], zero[good], dofs, free, air,
+                                full_walls, dict(info, note="partial"))
+        tol = _damped.REFINE_TOL if "refinement" in info else _damped.RESIDUAL_TOL
+        raise ConvergenceError(
+            f"{int(bad.sum())} of {ks.size} damped modes did not converge (their backward "
+            f"error exceeds {tol:g}); the converged ones are in .partial. Refine the mesh or "
+            "ask for fewer modes.",
+            partial=partial,
+        )
+    return _damped_modes(pencil, ks, X, zero, dofs, free, air, full_walls, info)
+
+
+def _damped_modes(pencil, ks, X, zero, dofs, free, air, full_walls, info) -> Modes:
+    o = np.argsort(pencil.frequency(ks), kind="stable")
+    ks, X, zero = ks[o], X[:, o], zero[o]
+    X, n_herm = _damped.normalise(X, pencil.M)
+    shapes = np.zeros((dofs.n_dofs, ks.size), dtype=complex)
+    shapes[free] = X
+    info = dict(info)
+    info["zero_mode"] = int(np.flatnonzero(zero)[0]) if zero.any() else None
+    if n_herm:
+        info["hermitian_normalised"] = n_herm
+    return Modes(pencil.frequency(ks), ks**2, shapes, dofs, air, full_walls,
+                 decay_rates=air.c * ks.imag, info=info, wavenumbers=ks)

@@ -1,0 +1,913 @@
+"""Damped modes of a room with impedance walls: the quadratic eigenproblem.
+
+Physics (time convention e^{+iωt}, :mod:`acoustic_fem.impedance`).  A wall of
+normalised admittance β = ρc/Z imposes ∂p/∂n = -ikβ p; the weak form of the
+Helmholtz equation becomes
+
+    ∫∇p·∇q dV - k² ∫pq dV + ik Σ_s β_s ∫_s pq dS = 0,
+
+i.e. the quadratic eigenproblem Q(k) x = (K + ik C - k² M) x = 0 with
+C = Σ_s β_s B_s (B_s the boundary mass of surface s).  K, M and B_s are
+real symmetric, so Q(k) is complex *symmetric* (not Hermitian) and the
+natural pairing of eigenvectors is the bilinear form xᵀMy.  An eigenvalue
+k = a + ib gives p ∝ e^{iωt} with ω = ck: frequency f = ca/(2π), decay rate
+δ = cb (> 0 for passive walls, Re β >= 0).
+
+Linearisation.  With y = kx the problem is the 2n-dimensional pencil
+
+    A z = k B z,   A = [[0, I], [K, iC]],   B = [[I, 0], [0, M]],   z = [x; y].
+
+Shift-invert of that pencil at σ never needs the 2n matrix factorised: the
+solution of (A - σB)[u; v] = [a; b] is u = Q(σ)⁻¹(b - (iC - σM)a),
+v = a + σu, so (A - σB)⁻¹B [x; y] = [u; x + σu] with
+u = Q(σ)⁻¹(M(y + σx) - iCx): one solve with the n x n matrix Q(σ) per
+application.  ARPACK's Arnoldi (scipy ``eigs``) then finds the θ of largest
+modulus of that operator, θ = 1/(k - σ), i.e. the k nearest σ; like the
+Hermitian case in :mod:`acoustic_fem._eigen`, the ``nev`` eigenvalues
+nearest σ contain every eigenvalue closer to σ than the farthest of them.
+(A block Krylov-Schur variant with multi-right-hand-side solves was tried:
+on this non-Hermitian operator it needed 2.5-6.5x more vectors for blocks of
+4-16 than single-vector Arnoldi, and lost overall.)  For real β the first
+window works in κ = -ik, where Q = K - κC + κ²M is real: real Arnoldi,
+half the arithmetic (:func:`real_companion_operator`).
+
+Shifts.  The first shift is σ = iτ on the positive imaginary axis.  There
+Q(iτ) = (K + τ²M - τ Re C) - iτ Im C: its real part is symmetric and, for
+τ above the wall's scale Re(∫_S β)/V, positive definite -- the matrix the
+undamped solver factorises at a negative shift, so CHOLMOD's supernodal
+Cholesky serves (Im C = 0 for real β: the factor *is* Q(iτ)⁻¹; otherwise
+GMRES preconditioned by it solves Q(iτ) to 1e-12).  Since the distance of
+k = a + ib from iτ is √(a² + (b - τ)²) <= √(a² + τ²) for 0 <= b <= 2τ, the
+roots nearest iτ are the lowest modes, in the order of the undamped ones;
+every root with 0 <= Im k <= 2τ and Re k < √(r² - τ²) (r the distance of
+the farthest root found) is among them.  τ is chosen as
+max(√0.1 π/(2 L_max), 2.5 |∫_S β dS|/V) (the first term is the undamped
+solver's first shift): the strip then holds every mode whose first-order
+decay (below) is up to 5x that of a box's oblique modes, and Re Q(iτ) is
+positive definite for the uniform vector (τ > Re ∫β/V); solve_modes warns
+when a root found lies above the strip.  Further windows (a
+band too wide for one) sit at σ = s + iτ, s > 0, cut in a gap of Re k
+between windows as in ``_eigen``, and factorise Q(σ) (complex, indefinite)
+by SciPy's SuperLU -- correct but much slower on big 3D meshes.
+
+Roots kept (each a mode with f >= 0):
+
+* Re k < 0 roots are the negative-frequency branch (for real β exactly the
+  mirror images -conj(k) of the kept ones): dropped.
+* A room without pressure-release surfaces has K1 = 0, so k = 0 is always a
+  root (x = uniform): the static state, which the Robin term (∝ k) cannot
+  damp.  It is the spurious partner of the double root k = 0 of the rigid
+  room, and is dropped (exactly one root: the one of smallest |k|).
+* The other partner is the continuation of the rigid room's 0 Hz uniform
+  mode: with β != 0 it becomes an (almost) aperiodic decay, first order
+  k0 = i Σβ_s S_s / V (below).  It is kept as mode 0 whatever the sign of
+  its tiny real part (a constant complex β, not physical at 0 Hz, gives
+  Re k0 = -Im(Σβ_s S_s)/V), identified as the remaining root of smallest |k|
+  when it is below half the next |k|; its frequency is reported as
+  c |Re k0| / (2π).
+
+Frequency-dependent walls: β_s(f) evaluated at each mode's own frequency
+f = c |Re k| / (2π) (never below a floor, ``Pencil.f_floor``, so that the
+uniform mode's β is defined).  The linear problem is solved with β frozen at a
+reference frequency; each mode is then refined on the nonlinear problem
+T(k) = K + ik Σ β_s(f(k)) B_s - k² M by the nonlinear Arnoldi method (H.
+Voss, BIT Numer. Math. 44 (2004) 387-401): Rayleigh-Ritz on a real basis V
+holding the frozen modes, the projected nonlinear problem solved per mode by
+Rayleigh-functional iteration (blocks of close modes first separated by a
+Rayleigh-Ritz step), and V expanded by the residuals preconditioned with the
+first shift's real factor -- residual inverse iteration (A. Neumaier, SIAM J.
+Numer. Anal. 22 (1985) 914-923) accelerated by the subspace.
+
+First-order perturbation (the ``perturbation`` option and a check).  For a
+simple rigid-room mode K φ = k_n² M φ, φᵀMφ = 1, k_n > 0, write k = k_n + κ
+and project Q(k)φ ≈ 0 on φ: k_n² - k² + ik φᵀCφ = 0, so
+-2 k_n κ + i k_n φᵀCφ = 0 and κ = (i/2) φᵀCφ:
+
+    δ_n = c Im k = (c/2) Σ_s Re(β_s) ∫_s φ² dS,
+    f_n - f_rigid = -(c/4π) Σ_s Im(β_s) ∫_s φ² dS.
+
+Degenerate (or close) rigid modes Φ_G: the same projection on span Φ_G gives
+k = eig(diag(k_i) + (i/2) Φ_Gᵀ C Φ_G).  The uniform mode (k_n = 0, φ = 1/√V)
+is a double root of the rigid room: -k² + ik φᵀCφ = 0 gives, besides the
+static k = 0, k0 = i φᵀCφ = i Σ_s β_s S_s / V -- twice the damping the
+k_n > 0 formula would give.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.linalg as sla
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+from threadpoolctl import threadpool_limits
+
+from ._eigen import CLUSTER_RTOL, _cut
+from ._errors import ConvergenceError, SolverError
+from ._linalg import factorize
+
+#: eigenpairs of the quadratic problem whose backward error exceeds this are rejected
+RESIDUAL_TOL = 1e-8
+#: target backward error of the refinement on frequency-dependent walls
+REFINE_TOL = 1e-10
+#: up to this many unknowns the 2n companion pencil is solved densely (LAPACK)
+DENSE_LIMIT = 300
+#: largest number of roots asked of one ARPACK window (memory: 2n x (2 nev + 1) complex)
+MAX_WINDOW_NEV = 240
+#: relative accuracy of the GMRES solves with Q(iτ) when Im β != 0 (the eigenpairs are
+#: then checked against RESIDUAL_TOL on the true quadratic problem)
+GMRES_TOL = 1e-10
+
+
+@dataclass
+class WallTerm:
+    """One impedance surface: its wall and boundary mass on the free DOFs."""
+
+    name: str
+    wall: object  # Impedance
+    B: sp.csr_matrix
+
+
+class Pencil:
+    """The matrices of Q(k) = K + ik Σ β_s B_s - k² M on the free DOFs.
+
+    Parameters
+    ----------
+    K, M : (n, n) sparse real symmetric
+    terms : list of WallTerm (the impedance surfaces)
+    air : Air
+    f_floor : float
+        Lowest frequency (Hz) at which a frequency-dependent β is evaluated.
+    """
+
+    def __init__(self, K, M, terms, air, f_floor):
+        self.K = sp.csr_matrix(K)
+        self.M = sp.csr_matrix(M)
+        self.terms = list(terms)
+        self.air = air
+        self.f_floor = float(f_floor)
+        self.n = self.K.shape[0]
+        self.norm_K = float(abs(self.K).sum(axis=1).max())
+        self.norm_M = float(abs(self.M).sum(axis=1).max())
+        self.norm_B = np.array([float(abs(t.B).sum(axis=1).max()) if t.B.nnz else 0.0
+                                for t in self.terms])
+
+    @property
+    def frequency_dependent(self) -> bool:
+        return any(t.wall.frequency_dependent for t in self.terms)
+
+    def frequency(self, k) -> np.ndarray:
+        """Frequency in Hz of roots k (any shape): c |Re k| / (2π)."""
+        return self.air.c * np.abs(np.real(k)) / (2.0 * math.pi)
+
+    def betas(self, f) -> np.ndarray:
+        """(n_terms, m) admittances of the impedance surfaces at frequencies f (m,) Hz."""
+        f = np.maximum(np.atleast_1d(np.asarray(f, dtype=float)), self.f_floor)
+        if not self.terms:
+            return np.zeros((0, f.size), dtype=complex)
+        return np.vstack([np.asarray(t.wall.admittance_at(f, self.air), dtype=complex)
+                          .reshape(f.size) for t in self.terms])
+
+    def C(self, beta) -> sp.csr_matrix:
+        """Σ β_s B_s for one admittance per surface, beta (n_terms,)."""
+        out = sp.csr_matrix((self.n, self.n), dtype=complex)
+        for b, t in zip(beta, self.terms):
+            if b != 0:
+                out = out + complex(b) * t.B
+        return out.tocsr()
+
+    def residuals(self, ks, X, betas) -> np.ndarray:
+        """(m,) backward errors of eigenpairs (k_j, x_j) with per-mode admittances.
+
+        ‖Q(k)x‖∞ / ((‖K‖∞ + |k| ‖C‖∞ + |k|² ‖M‖∞) ‖x‖∞), scaled by the
+        matrix norms (not by ‖Kx‖) so that the uniform mode is judged right.
+
+        ks : (m,) complex, X : (n, m), betas : (n_terms, m)
+        """
+        ks = np.asarray(ks)
+        if ks.size == 0:
+            return np.zeros(0)
+        R = self.K @ X - (self.M @ X) * ks**2
+        normC = np.zeros(ks.size)
+        for t, b, nb in zip(self.terms, betas, self.norm_B):
+            R = R + (t.B @ X) * (1j * ks * b)
+            normC += np.abs(b) * nb
+        ak = np.abs(ks)
+        scale = (self.norm_K + ak * normC + ak**2 * self.norm_M) * np.abs(X).max(axis=0)
+        return np.abs(R).max(axis=0) / np.maximum(scale, 1e-300)
+
+
+# ---------------------------------------------------------------------------
+# solves with Q(σ)
+# ---------------------------------------------------------------------------
+def _real_solve_complex(fsolve, b):
+    """Apply a real factor's solve to a complex (n,) or (n, m) right-hand side."""
+    b = np.asarray(b)
+    if b.ndim == 1:
+        x = fsolve(np.column_stack([b.real, b.imag]))
+        return x[:, 0] + 1j * x[:, 1]
+    m = b.shape[1]
+    x = fsolve(np.hstack([b.real, b.imag]))
+    return x[:, :m] + 1j * x[:, m:]
+
+
+def _gmres(matvec, psolve, b, tol, maxiter=80):
+    """Right-preconditioned GMRES (no restart) for one complex right-hand side.
+
+    Minimises the true residual ‖b - A x‖ over x = P⁻¹ (Krylov space)
+    (Saad & Schultz, SIAM J. Sci. Stat. Comput. 7 (1986) 856), with classical
+    Gram-Schmidt done twice.  Returns (x, relative residual, iterations).
+    """
+    beta = np.linalg.norm(b)
+    if beta == 0.0:
+        return np.zeros_like(b), 0.0
+    n = b.shape[0]
+    V = np.empty((maxiter + 1, n), dtype=complex)
+    Z = np.empty((maxiter, n), dtype=complex)
+    H = np.zeros((maxiter + 1, maxiter), dtype=complex)
+    V[0] = b / beta
+    e1 = np.zeros(maxiter + 1, dtype=complex)
+    e1[0] = beta
+    rel = 1.0
+    j = 0
+    for j in range(maxiter):
+        Z[j] = psolve(V[j])
+        w = matvec(Z[j])
+        for _ in range(2):
+            h = V[: j + 1].conj() @ w
+            w = w - h @ V[: j + 1]
+            H[: j + 1, j] += h
+        H[j + 1, j] = np.linalg.norm(w)
+        y, *_ = np.linalg.lstsq(H[: j + 2, : j + 1], e1[: j + 2], rcond=None)
+        rel = np.linalg.norm(e1[: j + 2] - H[: j + 2, : j + 1] @ y) / beta
+        if rel <= tol or H[j + 1, j].real <= 1e-300:
+            break
+        V[j + 1] = w / H[j + 1, j]
+    return y @ Z[: j + 1], rel, j + 1
+
+
+class ShiftSolver:
+    """Solves Q(σ) u = b, b complex (n,) or (n, m).
+
+    ``precondition(b)`` applies a real preconditioner (the factor of the
+    real part at an imaginary shift) to a complex right-hand side.
+    """
+
+    def __init__(self, solve, precondition, method, backend, real_solve=None):
+        self.solve = solve
+        self.precondition = precondition
+        self.real_solve = real_solve
+        self.method = method
+        self.backend = backend
+        self.gmres_worst = 0.0
+        self.gmres_iterations = 0
+
+
+def imaginary_shift_solver(pencil: Pencil, C, tau: float, backend: str) -> ShiftSolver:
+    """Solver of Q(iτ) = (K + τ²M - τ Re C) - iτ Im C (see the module notes)."""
+    R = (pencil.K + tau**2 * pencil.M - tau * sp.csr_matrix(C.real)).tocsc()
+    f = factorize(R, definite=True, backend=backend)
+    S = sp.csr_matrix(tau * C.imag)
+    S.eliminate_zeros()
+
+    def precondition(b):
+        return _real_solve_complex(f.solve, b)
+
+    if S.nnz == 0:
+        return ShiftSolver(precondition, precondition, "factor of Q(iτ)", f.backend, f.solve)
+
+    Q = (R - 1j * S).tocsr()
+    solver = None
+
+    def solve(b):
+        b = np.asarray(b, dtype=complex)
+        cols = b.reshape(b.shape[0], -1)
+        out = np.empty_like(cols)
+        for j in range(cols.shape[1]):
+            x, rel, its = _gmres(Q.__matmul__, precondition, cols[:, j], GMRES_TOL)
+            solver.gmres_worst = max(solver.gmres_worst, rel)
+            solver.gmres_iterations += its
+            out[:, j] = x
+        return out.reshape(b.shape)
+
+    solver = ShiftSolver(solve, precondition, "GMRES preconditioned by the factor of Re Q(iτ)",
+                         f.backend, f.solve)
+    return solver
+
+
+def general_shift_solver(pencil: Pencil, C, sigma: complex) -> ShiftSolver:
+    """Solver of Q(σ) for any complex σ by SciPy's SuperLU (complex LU, COLAMD order)."""
+    Q = (pencil.K + (1j * sigma) * C - (sigma**2) * pencil.M).tocsc().astype(complex)
+    try:
+        lu = spla.splu(Q, permc_spec="COLAMD")
+    except RuntimeError as exc:
+        raise SolverError(
+            f"Q(σ) is singular at the shift σ = {sigma:.6g} ({exc}); this is rare: retry with "
+            "a slightly different frequency range."
+        ) from None
+
+    def solve(b):
+        return lu.solve(np.asarray(b, dtype=complex))
+
+    return ShiftSolver(solve, None, "SuperLU (complex)", "superlu")
+
+
+def companion_operator(pencil: Pencil, C, sigma: complex, solver: ShiftSolver):
+    """(A - σB)⁻¹B of the companion pencil (module notes) on blocks.
+
+    Returns (apply, count): apply maps a (2n,) or (2n, b) complex array to
+    the same shape; count[0] is the number of vectors applied so far.
+    """
+    n = pencil.n
+    M = pencil.M
+    iC = (1j * C).tocsr()
+    count = [0]
+
+    def apply(z):
+        z = np.asarray(z)
+        one = z.ndim == 1
+        Z = z.reshape(2 * n, -1)
+        x, y = Z[:n], Z[n:]
+        u = solver.solve(M @ (y + sigma * x) - iC @ x)
+        u = u.reshape(n, -1)
+        count[0] += Z.shape[1]
+        out = np.vstack([u, x + sigma * u])
+        return out[:, 0] if one else out
+
+    return apply, count
+
+
+def real_companion_operator(pencil: Pencil, C, tau: float, fsolve):
+    """The companion operator in κ = -ik for a real C, in real arithmetic.
+
+    With k = iκ, Q(k) = K - κC + κ²M =: P(κ) is real when β is.  Its
+    pencil [[0, I], [-K, C]] z = κ diag(I, M) z, shift-inverted at κ = τ
+    (i.e. k = iτ), maps [x; y] to [u; x + τu] with
+    u = P(τ)⁻¹((C - τM)x - My), P(τ) = K - τC + τ²M = Re Q(iτ), the real
+    factor.  θ = 1/(κ - τ) gives k = i(τ + 1/θ).  Real Arnoldi then finds
+    the pairs k, -conj(k) together as complex-conjugate θ, at half the cost
+    of complex arithmetic.
+
+    Returns (apply, count) as :func:`companion_operator`.
+    """
+    n = pencil.n
+    M = pencil.M
+    CtM = (sp.csr_matrix(C.real) - tau * M).tocsr()
+    count = [0]
+
+    def apply(z):
+        z = np.asarray(z, dtype=float).reshape(-1)
+        x, y = z[:n], z[n:]
+        u = fsolve(CtM @ x - M @ y)
+        count[0] += 1
+        return np.concatenate([u, x + tau * u])
+
+    return apply, count
+
+
+# ---------------------------------------------------------------------------
+# root classification and normalisation
+# ---------------------------------------------------------------------------
+def classify(ks, has_static: bool, scale: float):
+    """Masks (keep, zero_mode) over roots ks of one window containing k = 0.
+
+    keep: Re k >= -1e-9 scale, or the continuation of the 0 Hz mode; the
+    static root (smallest |k|) is never kept (module notes).
+    """
+    ks = np.asarray(ks)
+    keep = ks.real >= -1e-9 * scale
+    zero = np.zeros(ks.size, dtype=bool)
+    if has_static and ks.size:
+        order = np.argsort(np.abs(ks), kind="stable")
+        keep[order[0]] = False
+        if ks.size >= 2:
+            i0 = order[1]
+            nxt = np.abs(ks[order[2]]) if ks.size >= 3 else math.inf
+            if np.abs(ks[i0]) < 0.5 * nxt:
+                zero[i0] = True
+                keep[i0] = True
+    return keep, zero
+
+
+def normalise(X, M):
+    """Scale eigenvectors so that xᵀMx = 1 (bilinear, unconjugated).
+
+    The sign makes the real part of the entry of largest modulus positive, so
+    that for β -> 0 the shapes tend to the real mass-normalised rigid ones.  A
+    vector with |xᵀMx| < 1e-6 xᴴMx (possible only for very strong damping) is
+    scaled to xᴴMx = 1 with that entry real and positive instead.
+
+    Returns (X, n_hermitian).
+    """
+    X = np.asarray(X, dtype=complex)
+    if X.shape[1] == 0:
+        return X, 0
+    MX = M @ X
+    q = np.einsum("ij,ij->j", X, MX)
+    h = np.einsum("ij,ij->j", X.conj(), MX).real
+    weak = np.abs(q) < 1e-6 * h
+    s = np.where(weak, np.sqrt(np.maximum(h, 1e-300)), np.sqrt(q))
+    X = X / s
+    idx = np.argmax(np.abs(X), axis=0)
+    top = X[idx, np.arange(X.shape[1])]
+    sign = np.where(top.real < 0, -1.0, 1.0)
+    phase = np.where(weak, np.conj(top) / np.maximum(np.abs(top), 1e-300), sign)
+    return X * phase, int(weak.sum())
+
+
+# ---------------------------------------------------------------------------
+# the linear (frozen-β) problem
+# ---------------------------------------------------------------------------
+@dataclass
+class LinearResult:
+    """Roots kept, sorted by frequency, with what the solver did."""
+
+    ks: np.ndarray
+    X: np.ndarray
+    zero_mode: np.ndarray
+    method: str = ""
+    windows: list = field(default_factory=list)
+    first_solver: ShiftSolver | None = None
+    tau: float = 0.0
+
+
+def _dense(pencil: Pencil, C):
+    """All 2n roots of the companion pencil, as the standard problem B⁻¹A (LAPACK).
+
+    B⁻¹A = [[0, I], [M⁻¹K, iM⁻¹C]]; the standard QR algorithm is several
+    times faster than QZ on the pencil.
+    """
+    n = pencil.n
+    M = pencil.M.toarray()
+    Cd = C.toarray() if sp.issparse(C) else np.asarray(C)
+    cho = sla.cho_factor(M)
+    A = np.zeros((2 * n, 2 * n), dtype=complex)
+    A[:n, n:] = np.eye(n)
+    A[n:, :n] = sla.cho_solve(cho, pencil.K.toarray())
+    A[n:, n:] = 1j * sla.cho_solve(cho, Cd)
+    with threadpool_limits(1, user_api="blas"):
+        w, Z = np.linalg.eig(A)
+    ok = np.isfinite(w)
+    return w[ok], Z[:n, ok]
+
+
+def _arnoldi(apply, n2, nev, tol, to_k, dtype):
+    """Roots nearest the shift by ARPACK (scipy eigs on the shift-inverted operator).
+
+    to_k maps the operator's eigenvalues θ to roots k.  Returns (ks, Z).
+    """
+    rng = np.random.default_rng(12345)
+    v0 = rng.standard_normal(n2)
+    if dtype is complex:
+        v0 = v0 + 1j * rng.standard_normal(n2)
+    ncv = int(min(n2 - 1, max(2 * nev + 1, nev + 20)))
+    op = spla.LinearOperator((n2, n2), matvec=apply, dtype=dtype)
+    # ARPACK's own work is BLAS-2 on (2n, ncv) blocks: on small problems, BLAS
+    # threads cost far more than they save (20x measured at 2n = 700)
+    limit = 1 if n2 * ncv < 4_000_000 else None
+    try:
+        with threadpool_limits(limit, user_api="blas"):
+            theta, Z = spla.eigs(op, k=nev, which="LM", v0=v0, ncv=ncv, tol=tol)
+    except spla.ArpackNoConvergence as exc:
+        th = np.asarray(exc.eigenvalues)
+        raise _WindowFailed(to_k(th), np.asarray(exc.eigenvectors), nev) from None
+    return to_k(theta), Z
+
+
+class _WindowFailed(Exception):
+    def __init__(self, ks, Z, nev):
+        super().__init__("ARPACK did not converge")
+        self.ks, self.Z, self.nev = ks, Z, nev
+
+
+def solve_linear(pencil: Pencil, beta, *, count, kmax, n_estimate, tau, has_static,
+                 backend="auto", dense_limit=None, max_nev=None,
+                 tol=1e-12) -> LinearResult:
+    """Roots of (K + ikC - k²M) x = 0 with constant C = Σ β_s B_s.
+
+    Parameters
+    ----------
+    pencil : Pencil
+    beta : (n_terms,) complex admittances
+    count : int or None -- the lowest count kept roots (modes)
+    kmax : float or None -- every kept root with |Re k| <= kmax
+    n_estimate : int -- estimated number of wanted modes (sizes the windows)
+    tau : float -- height of the shifts above the real axis (1/m)
+    has_static : bool -- no pressure-release DOFs (k = 0 is a root)
+    dense_limit, max_nev : default DENSE_LIMIT, MAX_WINDOW_NEV (read at call time)
+
+    Returns
+    -------
+    LinearResult with ks (m,) complex and X (n, m) (columns not normalised),
+    ordered by |Re k|; raises ConvergenceError(partial=(ks, X)) when a window
+    fails.
+    """
+    dense_limit = DENSE_LIMIT if dense_limit is None else dense_limit
+    max_nev = MAX_WINDOW_NEV if max_nev is None else max_nev
+    C = pencil.C(beta)
+    n = pencil.n
+    res = LinearResult(np.zeros(0, complex), np.zeros((n, 0), complex), np.zeros(0, bool),
+                       tau=tau)
+    if n <= dense_limit:
+        ks, X = _dense(pencil, C)
+        scale = max(float(np.abs(ks).max()) if ks.size else 1.0, 1e-300)
+        keep, zero = classify(ks, has_static, scale)
+        ks, X, zero = ks[keep], X[:, keep], zero[keep]
+        res.method = "dense companion (LAPACK eig)"
+        res.windows.append(dict(sigma_re=0.0, sigma_im=0.0, nev=int(2 * n), accepted=int(ks.size),
+                                solver="dense"))
+        res.first_solver = _dense_solver(pencil, C, tau)
+    else:
+        res.method = "companion shift-invert (ARPACK)"
+        ks, X, zero = _windows(pencil, C, count, kmax, n_estimate, tau, has_static, backend,
+                               max_nev, tol, res)
+    key = np.abs(ks.real)
+    o = np.argsort(key, kind="stable")
+    ks, X, zero = ks[o], X[:, o], zero[o]
+    if kmax is not None:
+        sel = np.abs(ks.real) <= kmax
+        ks, X, zero = ks[sel], X[:, sel], zero[sel]
+    if count is not None:
+        ks, X, zero = ks[:count], X[:, :count], zero[:count]
+    res.ks, res.X, res.zero_mode = ks, X, zero
+    return res
+
+
+def _dense_solver(pencil, C, tau):
+    """Dense LU solver of Q(iτ) and of its real part (small problems)."""
+    Qd = (pencil.K + tau**2 * pencil.M + (-tau) * C).toarray()
+    lu = sla.lu_factor(Qd)
+    lur = sla.lu_factor(Qd.real)
+
+    def solve(b):
+        return sla.lu_solve(lu, np.asarray(b, dtype=complex))
+
+    def precondition(b):
+        b = np.asarray(b, dtype=complex)
+        return sla.lu_solve(lur, b.real) + 1j * sla.lu_solve(lur, b.imag)
+
+    return ShiftSolver(solve, precondition, "dense LU", "lapack")
+
+
+def _windows(pencil, C, count, kmax, n_estimate, tau, has_static, backend, max_nev, tol, res):
+    n = pencil.n
+    n2 = 2 * n
+    want = count if count is not None else n_estimate
+    cap = int(min(max_nev, n2 - 2))
+    nev = int(min(2 * want + 6 + (2 if has_static else 0), cap))
+    s = 0.0
+    lower = -math.inf
+    acc_k, acc_X, acc_z = [], [], []
+    total = 0
+    scale = max(tau, 1e-300)
+    real_c = not np.any(C.data.imag)
+    for _attempt in range(200):
+        sigma = complex(s, tau)
+        if s == 0.0:
+            solver = imaginary_shift_solver(pencil, C, tau, backend)
+            res.first_solver = solver
+        else:
+            solver = general_shift_solver(pencil, C, sigma)
+        if s == 0.0 and real_c:
+            # real β: the κ = -ik form in real arithmetic (same factor)
+            apply, napp = real_companion_operator(pencil, C, tau, solver.real_solve)
+            to_k, dtype, used = (lambda th: 1j * (tau + 1.0 / th)), float, "ARPACK (real, κ = -ik)"
+        else:
+            apply, napp = companion_operator(pencil, C, sigma, solver)
+            to_k, dtype, used = (lambda th, sg=sigma: sg + 1.0 / th), complex, "ARPACK"
+        try:
+            ks, Z = _arnoldi(apply, n2, nev, tol, to_k, dtype)
+        except _WindowFailed as exc:
+            part_k = np.concatenate(acc_k) if acc_k else np.zeros(0, complex)
+            part_X = np.hstack(acc_X) if acc_X else np.zeros((n, 0), complex)
+            raise ConvergenceError(
+                f"the damped eigensolver did not converge in the window around σ = "
+                f"{sigma:.6g} 1/m ({exc.ks.size} of {nev} roots converged); ask for fewer "
+                "modes or refine the mesh.",
+                partial=(part_k, part_X),
+            ) from None
+        X = Z[:n]
+        scale = max(scale, float(np.abs(ks).max()))
+        r = float(np.abs(ks - sigma).max())
+        rho = math.sqrt(max(r * r - tau * tau, 0.0))
+        win = dict(sigma_re=float(s), sigma_im=float(tau), nev=int(nev), radius=r,
+                   solver=solver.method, backend=solver.backend, engine=used,
+                   applications=int(napp[0]))
+        if solver.gmres_iterations:
+            win["gmres_worst_residual"] = float(solver.gmres_worst)
+            win["gmres_iterations"] = int(solver.gmres_iterations)
+        if s > 0.0 and s - rho > lower + CLUSTER_RTOL * scale:
+            win.update(accepted=0, note="gap, retried")
+            res.windows.append(win)
+            s = lower + 0.5 * (s - lower) if math.isfinite(lower) else 0.5 * s
+            continue
+        if s == 0.0:
+            keep, zero = classify(ks, has_static, scale)
+        else:
+            keep = ks.real >= 0.0
+            zero = np.zeros(ks.size, dtype=bool)
+        key = np.abs(ks.real)
+        cand = np.flatnonzero(keep & (key >= lower))
+        cut, inside = _cut(key[cand], s + rho, scale)
+        take = cand[inside]
+        acc_k.append(ks[take])
+        acc_X.append(X[:, take])
+        acc_z.append(zero[take])
+        total += int(take.size)
+        win["accepted"] = int(take.size)
+        res.windows.append(win)
+        if (count is not None and total >= count) or (kmax is not None and cut > kmax):
+            break
+        if nev >= n2 - 2:
+            break
+        if not math.isfinite(cut) or take.size == 0:
+            if nev >= cap:
+                raise SolverError(
+                    f"the damped eigensolver's window around σ = {sigma:.6g} 1/m found no "
+                    f"complete set of modes with {nev} roots; the walls may be too absorbing "
+                    f"for this solver (τ = {tau:.3g} 1/m)."
+                )
+            nev = int(min(2 * nev, cap))
+            continue
+        lo_edge = max(lower, s - rho, 0.0)
+        span = max(cut - lo_edge, 1e-12 * scale)
+        density = take.size / span  # modes per unit of Re k
+        lower = cut
+        need = (count - total) if count is not None else max(n_estimate - total, 0)
+        nev = int(min(max(int(1.25 * need) + 8, 16, int(3.0 * density * tau) + 8), cap))
+        half = max(0.5 * nev / density, 1.2 * tau)
+        rho_next = math.sqrt(half * half - tau * tau)
+        s = cut + 0.6 * rho_next
+    else:
+        raise SolverError("the damped eigensolver's windows did not cover the requested range.")
+    ks = np.concatenate(acc_k)
+    X = np.hstack(acc_X)
+    zero = np.concatenate(acc_z)
+    return ks, X, zero
+
+
+# ---------------------------------------------------------------------------
+# nonlinear refinement (frequency-dependent walls)
+# ---------------------------------------------------------------------------
+def _m_orth_extend(V, MV, W, M, drop=1e-10):
+    """Append the M-orthonormalised part of the real columns W to the basis V."""
+    for _ in range(2):
+        if V is not None and V.shape[1]:
+            W = W - V @ (MV.T @ W)
+    MW = M @ W
+    G = W.T @ MW
+    G = 0.5 * (G + G.T)
+    w, U = np.linalg.eigh(G)
+    if w.size == 0 or w.max() <= 0:
+        return V, MV, 0
+    keep = w > drop * max(w.max(), 1e-300)
+    if V is not None and V.shape[1]:
+        # relative to the basis: a new direction must not be mostly round-off
+        ref = np.linalg.norm(W, axis=0).max() ** 2
+        keep &= w > 1e-20 * max(ref, 1e-300)
+    T = U[:, keep] / np.sqrt(w[keep])
+    Wn, MWn = W @ T, MW @ T
+    # one more pass for orthogonality to V and within the block
+    if V is not None and V.shape[1]:
+        Wn = Wn - V @ (MV.T @ Wn)
+        MWn = M @ Wn
+    G = Wn.T @ MWn
+    L = np.linalg.cholesky(0.5 * (G + G.T))
+    Li = sla.solve_triangular(L, np.eye(L.shape[0]), lower=True)
+    Wn, MWn = Wn @ Li.T, MWn @ Li.T
+    if V is None:
+        return Wn, MWn, Wn.shape[1]
+    return np.hstack([V, Wn]), np.hstack([MV, MWn]), Wn.shape[1]
+
+
+def _small_qep(A, C):
+    """All roots of (A + ikC - k²I) y = 0 (dense g x g): (2g,) roots, (g, 2g) vectors."""
+    g = A.shape[0]
+    L = np.block([[np.zeros((g, g)), np.eye(g)], [A, 1j * C]])
+    w, Z = np.linalg.eig(L)
+    return w, Z[:g]
+
+
+def _rayleigh_root(a, c, m, k_prev):
+    """Root nearest k_prev of a + ik c - k² m = 0 (the bilinear Rayleigh functional)."""
+    if m == 0:
+        return k_prev
+    disc = np.sqrt(complex(4.0 * a * m - c * c))
+    r1 = (1j * c + disc) / (2.0 * m)
+    r2 = (1j * c - disc) / (2.0 * m)
+    return r1 if abs(r1 - k_prev) <= abs(r2 - k_prev) else r2
+
+
+def _solve_shifted(Qk, rhs):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            return sla.solve(Qk, rhs, check_finite=False)
+        except (np.linalg.LinAlgError, ValueError):
+            return np.linalg.lstsq(Qk, rhs, rcond=None)[0]
+
+
+def _projected(KV, BV, pencil, ks, Y, todo, tol=1e-13, max_it=40):
+    """Solve the projected nonlinear problem for the modes ``todo`` (in place).
+
+    KV : (p, p), BV : list of (p, p) (one per impedance surface), M-orthonormal
+    basis so the projected mass is I.  ks (m,), Y (p, m) current approximations.
+    Returns the inner iteration counts (m,).
+    """
+    p = KV.shape[0]
+    I = np.eye(p)
+    its = np.zeros(ks.size, dtype=int)
+    nK = np.abs(KV).sum(axis=1).max()
+    nB = [np.abs(b).sum(axis=1).max() for b in BV]
+
+    def Cof(f):
+        beta = pencil.betas(np.array([f]))[:, 0]
+        return sum((b * Bm for b, Bm in zip(beta, BV)), np.zeros((p, p), complex)), beta
+
+    # groups of close modes (relative 2 %), separated first by block steps
+    idx = np.asarray(todo)[np.argsort(np.abs(ks[todo].real), kind="stable")]
+    groups = []
+    cur = [idx[0]] if idx.size else []
+    for a, b in zip(idx[:-1], idx[1:]):
+        if abs(ks[b] - ks[a]) <= 0.02 * max(abs(ks[b]), abs(ks[a]), 1e-300):
+            cur.append(b)
+        else:
+            groups.append(cur)
+            cur = [b]
+    if cur:
+        groups.append(cur)
+    for grp in groups:
+        if len(grp) > 1:
+            f = float(np.mean(pencil.frequency(ks[grp])))
+            C, _ = Cof(f)
+            for _ in range(8):
+                W = np.column_stack([
+                    _solve_shifted(KV + 1j * ks[i] * C - ks[i] ** 2 * I,
+                                   (1j * C - 2 * ks[i] * I) @ Y[:, i]) for i in grp])
+                U, _ = np.linalg.qr(W)
+                w, Z = _small_qep(U.conj().T @ KV @ U, U.conj().T @ C @ U)
+                used = np.zeros(w.size, dtype=bool)
+                moved = 0.0
+                for i in grp:
+                    d = np.where(used, np.inf, np.abs(w - ks[i]))
+                    j = int(np.argmin(d))
+                    used[j] = True
+                    moved = max(moved, abs(w[j] - ks[i]) / max(abs(w[j]), 1e-300))
+                    ks[i] = w[j]
+                    y = U @ Z[:, j]
+                    Y[:, i] = y / np.linalg.norm(y)
+                    its[i] += 1
+                if moved < 1e-12:
+                    break
+        for i in grp:
+            k = ks[i]
+            y = Y[:, i] / np.linalg.norm(Y[:, i])
+            f_prev = None
+            for _ in range(max_it):
+                f = float(pencil.frequency(k))
+                C, beta = Cof(f)
+                k = _rayleigh_root(y @ KV @ y, y @ C @ y, y @ y, k)
+                Qk = KV + 1j * k * C - k * k * I
+                nC = sum(abs(b) * nb for b, nb in zip(beta, nB))
+                rr = np.abs(Qk @ y).max() / ((nK + abs(k) * nC + abs(k) ** 2) * np.abs(y).max())
+                its[i] += 1
+                f_ok = f_prev is not None and abs(f - f_prev) <= 1e-13 * max(f, 1e-300)
+                if rr < tol and (f_ok or not pencil.frequency_dependent):
+                    break
+                f_prev = f
+                y = _solve_shifted(Qk, (1j * C - 2 * k * I) @ y)
+                y = y / np.linalg.norm(y)
+            ks[i] = k
+            Y[:, i] = y
+    return its
+
+
+def refine_nonlinear(pencil: Pencil, ks, X, precondition, *, tol=REFINE_TOL, max_outer=40):
+    """Refine eigenpairs of the frozen-β problem on T(k) = K + ik C(f(k)) - k² M.
+
+    Parameters
+    ----------
+    pencil : Pencil (its walls give β_s(f))
+    ks : (m,) complex, X : (n, m) complex -- starting eigenpairs
+    precondition : callable, complex (n, j) -> (n, j), a real preconditioner
+    tol : backward-error target
+
+    Returns
+    -------
+    ks (m,), X (n, m), residuals (m,), info dict (outer iterations, basis size,
+    per-mode inner iterations, per-mode outer iteration at convergence).
+    """
+    K, M = pencil.K, pencil.M
+    m = ks.size
+    ks = np.array(ks, dtype=complex)
+    V, MV, _ = _m_orth_extend(None, None, np.hstack([X.real, X.imag]), M)
+    KV = V.T @ (K @ V)
+    BV = [V.T @ (t.B @ V) for t in pencil.terms]
+    Y = MV.T @ X
+    conv = np.zeros(m, dtype=bool)
+    inner = np.zeros(m, dtype=int)
+    outer_at = np.full(m, -1)
+    rel = np.full(m, np.inf)
+    outer = 0
+    for outer in range(1, max_outer + 1):
+        todo = np.flatnonzero(~conv)
+        with threadpool_limits(1, user_api="blas"):  # small dense problems (p <= a few 100)
+            inner += _projected(0.5 * (KV + KV.T), [0.5 * (b + b.T) for b in BV], pencil, ks,
+                                Y, todo)
+        Xt = V @ Y[:, todo]
+        betas = pencil.betas(pencil.frequency(ks[todo]))
+        r = pencil.residuals(ks[todo], Xt, betas)
+        rel[todo] = r
+        newly = todo[r < tol]
+        conv[newly] = True
+        outer_at[newly] = outer
+        if conv.all():
+            break
+        todo = np.flatnonzero(~conv)
+        Xt = V @ Y[:, todo]
+        kt = ks[todo]
+        betas = pencil.betas(pencil.frequency(kt))
+        R = K @ Xt - (M @ Xt) * kt**2
+        for t, b in zip(pencil.terms, betas):
+            R = R + (t.B @ Xt) * (1j * kt * b)
+        T = precondition(R)
+        p_old = V.shape[1]
+        V, MV, added = _m_orth_extend(V, MV, np.hstack([T.real, T.imag]), M)
+        if added == 0:
+            break
+        Wn = V[:, p_old:]
+        KW = K @ Wn
+        KV = np.block([[KV, V[:, :p_old].T @ KW], [KW.T @ V[:, :p_old], Wn.T @ KW]])
+        for s, t in enumerate(pencil.terms):
+            BW = t.B @ Wn
+            BV[s] = np.block([[BV[s], V[:, :p_old].T @ BW], [BW.T @ V[:, :p_old], Wn.T @ BW]])
+        Y = np.vstack([Y, np.zeros((added, m), complex)])
+    X = V @ Y
+    info = dict(outer_iterations=int(outer), basis_size=int(V.shape[1]),
+                inner_iterations=inner.tolist(), converged_at_outer=outer_at.tolist())
+    return ks, X, rel, info
+
+
+# ---------------------------------------------------------------------------
+# first-order perturbation of the rigid modes
+# ---------------------------------------------------------------------------
+def first_order(pencil: Pencil, lam, Phi):
+    """First-order damped roots from rigid modes (module notes).
+
+    Parameters
+    ----------
+    pencil : Pencil
+    lam : (m,) ascending rigid eigenvalues k² (0 for the uniform mode)
+    Phi : (n, m) real, M-orthonormal rigid shapes
+
+    Returns
+    -------
+    ks : (m,) complex first-order roots, shapes (n, m) complex with
+    shapesᵀ M shapes = I on the diagonal, zero_mode (m,) bool.
+    β of a frequency-dependent wall is taken at the rigid frequency (a close
+    group's mean).
+    """
+    m = lam.size
+    kr = np.sqrt(np.clip(lam, 0.0, None))
+    BPhi = [t.B @ Phi for t in pencil.terms]
+    diag = np.array([np.einsum("ij,ij->j", Phi, bp) for bp in BPhi]).reshape(len(BPhi), m)
+    betas = pencil.betas(pencil.frequency(kr))
+    cdiag = (betas * diag).sum(axis=0) if len(BPhi) else np.zeros(m, complex)
+    kscale = max(float(kr.max()) if m else 1.0, 1e-300)
+    zero_mode = kr <= 1e-8 * kscale
+    ks = np.empty(m, dtype=complex)
+    shapes = Phi.astype(complex)
+    # groups: rigid roots closer than 5 |c| (10 x the first-order shift) or degenerate
+    groups = []
+    cur = [0] if m else []
+    for j in range(1, m):
+        gap = kr[j] - kr[j - 1]
+        near = gap <= 5.0 * max(abs(cdiag[j]), abs(cdiag[j - 1])) + 1e-8 * kscale
+        if near and not zero_mode[j - 1] and not zero_mode[j]:
+            cur.append(j)
+        else:
+            groups.append(cur)
+            cur = [j]
+    if cur:
+        groups.append(cur)
+    for g in groups:
+        if len(g) == 1:
+            j = g[0]
+            ks[j] = 1j * cdiag[j] if zero_mode[j] else kr[j] + 0.5j * cdiag[j]
+            continue
+        f = float(np.mean(pencil.frequency(kr[g])))
+        beta = pencil.betas(np.array([f]))[:, 0]
+        PhiG = Phi[:, g]
+        with threadpool_limits(1, user_api="blas"):  # (g, n) x (n, g): threads only cost
+            CG = sum(b * (PhiG.T @ bp[:, g]) for b, bp in zip(beta, BPhi))
+        w, Z = np.linalg.eig(np.diag(kr[g]).astype(complex) + 0.5j * CG)
+        o = np.argsort(w.real)
+        w, Z = w[o], Z[:, o]
+        Z = Z / np.sqrt(np.einsum("ij,ij->j", Z, Z))
+        ks[g] = w
+        shapes[:, g] = PhiG @ Z
+    return ks, shapes, zero_mode
+
