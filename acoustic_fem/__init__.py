@@ -10,6 +10,7 @@ from ._errors import (
     InputError,
     MeshError,
     MeshReadError,
+    ModelTooLargeError,
     SolverError,
     UnknownSurfaceError,
 )
@@ -28,9 +29,15 @@ from .impedance import (
 )
 from .mesh import Mesh, MeshWarning
 from .mesh_io import from_meshio, read_mesh, write_mesh
-from .modes import Modes, ResolutionWarning, solve_modes
+from .modes import DampingMethod, Modes, ResolutionWarning, solve_modes
 from .walls import PressureRelease, Rigid, Wall
+from .study import BoxModel, Combine, SweepResult, plot_tracks, sweep
+from .tracking import Tracks, mac_matrix, track_modes
 from . import analytic, geometry
+from ._cost import CostEstimate, available_memory, check_memory, estimate_cost
+from .cad import FacesInBox, FacesOnPlane, cad_faces, import_cad, import_stl, stl_patches
+from .mesh_report import MeshReport, cell_angles, cell_quality, mesh_report
+from . import cad
 
 __version__ = "0.1.0"
 
@@ -38,7 +45,35 @@ __all__ = [
     "AcousticFemError", "ConvergenceError", "InputError", "MeshError", "MeshReadError",
     "SolverError", "UnknownSurfaceError", "OutputExistsError", "MeshWarning",
     "Air", "Assembly", "assemble", "boundary_mass", "DofMap", "CellType", "Mesh",
-    "read_mesh", "write_mesh", "from_meshio", "Modes", "solve_modes", "ResolutionWarning",
+    "read_mesh", "write_mesh", "from_meshio", "Modes", "solve_modes", "DampingMethod",
+    "ResolutionWarning",
     "Rigid", "PressureRelease", "Wall", "Impedance", "Incidence", "PorousModel",
     "absorption_coefficient", "impedance_from_absorption", "write_vtk", "write_modes_csv", "analytic", "geometry",
+    "ModelTooLargeError", "CostEstimate", "estimate_cost", "check_memory", "available_memory",
+    "import_cad", "import_stl", "cad_faces", "stl_patches", "FacesInBox", "FacesOnPlane", "cad",
+    "MeshReport", "mesh_report", "cell_quality", "cell_angles",
+]
+
+__all__ += [
+    "BoxModel", "Combine", "SweepResult", "plot_tracks", "sweep", "Tracks", "mac_matrix",
+    "track_modes",
+]
+
+# a-posteriori error estimates, accuracy target, refinement, verification report
+from .estimate import AccurateModes, ModeErrors, estimate_errors, solve_to_tolerance
+from .refine import refine_uniform
+from . import verification
+
+__all__ += [
+    "AccurateModes", "ModeErrors", "estimate_errors", "solve_to_tolerance", "refine_uniform",
+    "verification",
+]
+
+# forced harmonic response at listening seats
+from .response import (Method, PointSource, ReceiverPlane, Response, SmoothingWindow,
+                       receiver_line, receiver_plane, solve_response)
+
+__all__ += [
+    "PointSource", "solve_response", "Response", "Method", "SmoothingWindow", "ReceiverPlane",
+    "receiver_line", "receiver_plane",
 ]
