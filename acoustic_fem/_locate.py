@@ -7,22 +7,23 @@ turns that into the sparse (n_points, n_dofs) matrix E with
 
 Search (vectorised over all points and candidates at once):
 
-1. A k-d tree over the cell centroids gives the k nearest cells of every
-   point (k = 8, then 32, then 128 for the points not yet found).
-2. For every (point, candidate) pair the barycentric coordinates λ in the
-   straight (vertex) simplex are computed with the precomputed inverse
+1. A k-d tree over the cell centroids gives the 8 nearest cells of every
+   point; for every (point, candidate) pair the barycentric coordinates λ
+   in the straight (vertex) simplex follow from precomputed inverse
    Jacobians.  The candidate's *outside distance* is estimated as
-   ``max_i(-λ_i / |∇λ_i|)`` (the distance beyond the most violated face
-   plane; negative inside), and the candidate with the smallest estimate
-   wins.
-3. Curved (second-order geometry) cells: for candidates that are curved,
-   the straight-sided coordinates start a Newton iteration on the
-   isoparametric P2 map x(ξ) = Σ_k N_k(ξ) X_k, which gives the exact
-   reference coordinates; the outside distance is then estimated from the
-   reference barycentrics with the same face-height scaling.
-4. Points still not inside within the tolerance after the largest k are
-   tested against every cell (in chunks), so a point inside the mesh is
-   never reported outside because of a skewed centroid neighbourhood.
+   ``max_i(-λ_i |∇λ_i|⁻¹)`` (the distance beyond the most violated face
+   plane; negative inside); the smallest wins.
+2. Points not inside within the tolerance after step 1 (near skewed cells,
+   or outside the mesh) are tested against *every* cell that can contain
+   them: a cell lies within the ball of radius r_e (farthest node from its
+   centroid; x 1.25 for curved cells) about its centroid, so a ball query of
+   radius max(r_e) + tol and the filter |x - c_e| <= r_e + tol give a
+   complete candidate list.  A point this step does not place is outside.
+3. Curved (second-order geometry) cells: candidates that are curved get
+   their reference coordinates by Newton's method on the isoparametric P2
+   map x(ξ) = Σ_k N_k(ξ) X_k, started from the straight-sided ones; the
+   outside distance then uses the reference barycentrics with the same
+   face-height scaling.
 
 A point is accepted when its outside distance is at most ``tol`` (default
 1e-6 of the bounding-box diagonal); its barycentric coordinates are then
@@ -47,8 +48,9 @@ __all__ = ["Location", "locate", "interpolation_matrix", "DEFAULT_RTOL"]
 #: Default location tolerance, relative to the bounding-box diagonal.
 DEFAULT_RTOL = 1e-6
 
-_K_STEPS = (8, 32, 128)
+_K_NEAREST = 8
 _NEWTON_ITERS = 12
+_PAIRS_PER_CHUNK = 400_000
 
 
 @dataclass(frozen=True)
@@ -63,7 +65,7 @@ class Location:
         Reference coordinates in that cell (NaN where outside).
     outside : (n,) float array
         Estimated distance outside the mesh in m (<= tol for found points;
-        negative values mean strictly inside).
+        negative means strictly inside; inf where no cell is near).
     """
 
     cells: np.ndarray
@@ -79,10 +81,7 @@ _CACHE: "weakref.WeakKeyDictionary[Mesh, tuple]" = weakref.WeakKeyDictionary()
 
 
 def _cell_data(mesh: Mesh):
-    """Centroid tree, vertex x0 (E, d), inverse Jacobians (E, d, d), face gradient norms.
-
-    Cached per mesh (weakly: dropped with the mesh).
-    """
+    """Per-cell search data, cached per mesh (weakly: dropped with the mesh)."""
     hit = _CACHE.get(mesh)
     if hit is None:
         hit = _CACHE[mesh] = _compute_cell_data(mesh)
@@ -90,6 +89,7 @@ def _cell_data(mesh: Mesh):
 
 
 def _compute_cell_data(mesh: Mesh):
+    """Centroid tree, x0 (E, d), inverse Jacobians (E, d, d), |∇λ| (E, d+1), radii, curved."""
     from scipy.spatial import cKDTree
 
     from .assembly import _curved_cells
@@ -100,9 +100,13 @@ def _compute_cell_data(mesh: Mesh):
     Jinv = np.linalg.inv(J)  # rows: ∇λ_1..∇λ_d
     grad0 = -Jinv.sum(axis=1)  # ∇λ_0
     gnorm = np.column_stack([np.linalg.norm(grad0, axis=1), np.linalg.norm(Jinv, axis=2)])
-    tree = cKDTree(X.mean(axis=1))
+    centroid = X.mean(axis=1)
+    nodes = mesh.points[mesh.cells, :d]  # all geometry nodes (vertices and mid-edge)
+    radius = np.linalg.norm(nodes - centroid[:, None, :], axis=2).max(axis=1)
     curved = _curved_cells(mesh)
-    return tree, np.ascontiguousarray(X[:, 0, :]), Jinv, gnorm, curved
+    radius[curved] *= 1.25  # a curved edge may bulge a little beyond its nodes
+    tree = cKDTree(centroid)
+    return tree, centroid, np.ascontiguousarray(X[:, 0, :]), Jinv, gnorm, radius, curved
 
 
 def _newton(mesh: Mesh, cells: np.ndarray, x: np.ndarray, xi0: np.ndarray) -> np.ndarray:
@@ -118,37 +122,47 @@ def _newton(mesh: Mesh, cells: np.ndarray, x: np.ndarray, xi0: np.ndarray) -> np
         J = np.einsum("mki,mka->mia", Xn, dN)
         step = np.linalg.solve(J, r[..., None])[..., 0]
         xi = xi - step
-        # keep far-off candidates bounded: they lose anyway
-        np.clip(xi, -2.0, 3.0, out=xi)
+        np.clip(xi, -2.0, 3.0, out=xi)  # far-off candidates stay bounded; they lose anyway
         if np.max(np.abs(step), initial=0.0) < 1e-13:
             break
     return xi
 
 
-def _candidates(mesh: Mesh, x: np.ndarray, cand: np.ndarray):
-    """Best candidate per point: (cell, xi, outside) for points x (n, d), cand (n, k)."""
-    tree, x0, Jinv, gnorm, curved = _cell_data(mesh)
-    n, k = cand.shape
-    d = mesh.dim
-    rel = x[:, None, :] - x0[cand]  # (n, k, d)
-    xi = np.einsum("nkab,nkb->nka", Jinv[cand], rel)  # (n, k, d)
-    lam = np.concatenate([1.0 - xi.sum(axis=2, keepdims=True), xi], axis=2)
-    g = gnorm[cand]  # (n, k, d+1)
+def _score(mesh: Mesh, x: np.ndarray, cells: np.ndarray):
+    """Reference coordinates (m, d) and outside distance (m,) of points x (m, d) in cells (m,)."""
+    _, _, x0, Jinv, gnorm, _, curved = _cell_data(mesh)
+    xi = np.einsum("mab,mb->ma", Jinv[cells], x - x0[cells])
+    lam = np.column_stack([1.0 - xi.sum(axis=1), xi])
+    g = gnorm[cells]
     if curved.any():
-        cv = curved[cand]
-        # curved candidates whose straight simplex is not hopelessly far
-        near = cv & ((-lam / g).max(axis=2) < 0.5 * (1.0 / g).max(axis=2))
+        cv = curved[cells]
+        # curved candidates whose straight simplex is not far off
+        near = cv & ((-lam / g).max(axis=1) < 0.5 * (1.0 / g).max(axis=1))
         if near.any():
-            ii, jj = np.nonzero(near)
-            xin = _newton(mesh, cand[ii, jj], x[ii], xi[ii, jj])
-            xi[ii, jj] = xin
-            lam[ii, jj] = np.column_stack([1.0 - xin.sum(axis=1), xin])
-        far = cv & ~near
-        lam[far] = -np.inf  # cannot contain the point
-    out = (-lam / g).max(axis=2)  # (n, k) outside-distance estimate
-    best = np.argmin(out, axis=1)
-    r = np.arange(n)
-    return cand[r, best], xi[r, best], out[r, best]
+            ii = np.flatnonzero(near)
+            xin = _newton(mesh, cells[ii], x[ii], xi[ii])
+            xi[ii] = xin
+            lam[ii] = np.column_stack([1.0 - xin.sum(axis=1), xin])
+        lam[cv & ~near] = -np.inf  # cannot contain the point
+    return xi, (-lam / g).max(axis=1)
+
+
+def _best(mesh, x, pt, cells, n):
+    """Best cell per point over candidate pairs (pt[j], cells[j]); pairs grouped by point."""
+    best_c = np.full(n, -1, dtype=np.int64)
+    best_xi = np.full((n, mesh.dim), np.nan)
+    best_o = np.full(n, np.inf)
+    for s in range(0, pt.size, _PAIRS_PER_CHUNK):  # chunks of pairs, each vectorised
+        p, c = pt[s : s + _PAIRS_PER_CHUNK], cells[s : s + _PAIRS_PER_CHUNK]
+        xi, o = _score(mesh, x[p], c)
+        # per point, the pair of smallest outside distance
+        order = np.lexsort((o, p))
+        p, c, xi, o = p[order], c[order], xi[order], o[order]
+        first = np.r_[True, p[1:] != p[:-1]]
+        p, c, xi, o = p[first], c[first], xi[first], o[first]
+        better = o < best_o[p]
+        best_c[p[better]], best_xi[p[better]], best_o[p[better]] = c[better], xi[better], o[better]
+    return best_c, best_xi, best_o
 
 
 def locate(mesh: Mesh, points: np.ndarray, tol: float | None = None) -> Location:
@@ -174,34 +188,26 @@ def locate(mesh: Mesh, points: np.ndarray, tol: float | None = None) -> Location
     if tol is None:
         bb = mesh.bounding_box
         tol = DEFAULT_RTOL * float(np.linalg.norm(bb[1] - bb[0]))
-    tree = _cell_data(mesh)[0]
+    tree, centroid, _, _, _, radius, _ = _cell_data(mesh)
     E = mesh.n_cells
-    cells = np.full(n, -1, dtype=np.int64)
-    xi = np.full((n, d), np.nan)
-    outside = np.full(n, np.inf)
-    todo = np.arange(n)
-    for k in _K_STEPS:
-        if todo.size == 0:
-            break
-        kk = min(k, E)
-        _, cand = tree.query(x[todo], k=kk)
-        cand = np.asarray(cand).reshape(todo.size, kk)
-        c, r, o = _candidates(mesh, x[todo], cand)
-        better = o < outside[todo]
-        sel = todo[better]
-        cells[sel], xi[sel], outside[sel] = c[better], r[better], o[better]
-        todo = todo[outside[todo] > tol]
-        if kk == E:
-            break
-    if todo.size and E > _K_STEPS[-1]:
-        # exhaustive check of the remaining points against every cell (chunks)
-        chunk = max(1, 2_000_000 // max(todo.size, 1))
-        for s in range(0, E, chunk):  # loop over cell chunks, each vectorised
-            cand = np.broadcast_to(np.arange(s, min(s + chunk, E)), (todo.size, min(chunk, E - s)))
-            c, r, o = _candidates(mesh, x[todo], np.ascontiguousarray(cand))
-            better = o < outside[todo]
-            sel = todo[better]
-            cells[sel], xi[sel], outside[sel] = c[better], r[better], o[better]
+    # 1. nearest centroids
+    k = min(_K_NEAREST, E)
+    _, cand = tree.query(x, k=k)
+    cand = np.asarray(cand, dtype=np.int64).reshape(n, k)
+    cells, xi, outside = _best(mesh, x, np.repeat(np.arange(n), k), cand.ravel(), n)
+    # 2. every cell that can contain the remaining points
+    todo = np.flatnonzero(outside > tol)
+    if todo.size:
+        from scipy.spatial import cKDTree
+
+        pairs = cKDTree(x[todo]).sparse_distance_matrix(
+            tree, float(radius.max()) + tol, output_type="ndarray")
+        if pairs.size:
+            pt, cc = todo[pairs["i"].astype(np.int64)], pairs["j"].astype(np.int64)
+            close = pairs["v"] <= radius[cc] + tol
+            c2, xi2, o2 = _best(mesh, x, pt[close], cc[close], n)
+            better = o2 < outside
+            cells[better], xi[better], outside[better] = c2[better], xi2[better], o2[better]
     bad = outside > tol
     cells[bad] = -1
     xi[bad] = np.nan
@@ -218,7 +224,7 @@ def interpolation_matrix(dofs: DofMap, loc: Location) -> sp.csr_matrix:
     """Sparse (n_points, n_dofs) point-evaluation matrix of the FE space.
 
     Row i holds the basis values φ_j(x_i) of the cell containing point i
-    (all-zero row for a point not found).
+    (an all-zero row for a point not found).
     """
     el = reference_element(dofs.mesh.cell_type, dofs.order)
     n = len(loc.cells)

@@ -221,6 +221,11 @@ def test_rigid_room_absorbs_nothing(meshes):
     assert np.all(r.power_absorbed == 0)
     assert np.all(np.abs(r.power_in) < 1e-9 * 0.5 * np.abs(r.pressure).max() * 1e-3)
     assert np.all(np.isnan(r.energy_imbalance))
+    # the modal path without absorbing walls: the same field
+    m = solve_response(meshes["box"], None, sources=PointSource((0.2, 0.2, 0.2), 1e-3),
+                       receivers=[(0.6, 0.45, 0.35)], frequencies=[100.0, 200.0], order=1,
+                       air=AIR, method="modal", tol=1e-6)
+    assert np.allclose(m.pressure, r.pressure, rtol=1e-4)
 
 
 # ---------------------------------------------------------- scikit-fem
@@ -443,6 +448,23 @@ def test_fractional_octave_smoothing():
     # smoothing narrows the spread of a peaky spectrum
     peaky = _synthetic(f, (1 + 0.9 * np.sin(f / 3.0))[:, None] * 1e-2)
     assert np.ptp(peaky.smoothed_spl(3)[200:800]) < np.ptp(peaky.spl[200:800])
+
+
+def test_write_csv(tmp_path, meshes):
+    import csv
+
+    r = solve_response(meshes["box"], None, sources=PointSource((0.2, 0.2, 0.2), 1e-3),
+                       receivers=[(0.6, 0.45, 0.35), (1.0, 0.2, 0.6)],
+                       frequencies=[100.0, 150.0, 200.0], order=1, air=AIR)
+    path = r.write_csv(tmp_path / "seats.csv")
+    rows = list(csv.DictReader(open(path, encoding="utf-8")))
+    assert len(rows) == 6
+    p = np.array([float(w["p_real_pa"]) + 1j * float(w["p_imag_pa"]) for w in rows])
+    assert np.allclose(p.reshape(3, 2), r.pressure, rtol=1e-8)
+    assert np.allclose([float(w["spl_db"]) for w in rows], r.spl.ravel(), atol=1e-5)
+    with pytest.raises(af.OutputExistsError):
+        r.write_csv(path)
+    r.write_csv(path, overwrite=True)
 
 
 # ------------------------------------------------------------ bad input
