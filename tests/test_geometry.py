@@ -269,7 +269,6 @@ def test_pressure_release_door_lowers_first_mode():
     assert np.all(door >= rigid * (1 - 1e-9))
 
 
-@pytest.mark.slow
 def test_l_room_default_sizing_against_refined_reference():
     # acceptance: every mode below fmax at the default sizing within 0.5 % of a
     # reference on the same geometry with half the mesh size (P2); the

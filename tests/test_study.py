@@ -514,7 +514,6 @@ def test_dask_local_cluster_matches_in_process(tmp_path):
     assert _csv_text(rd, tmp_path, "d.csv") == _csv_text(r1, tmp_path, "p.csv")
 
 
-@pytest.mark.slow
 def test_dask_worker_processes(tmp_path):
     distributed = pytest.importorskip("distributed")
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
