@@ -403,6 +403,18 @@ VALIDITY = {
     PorousModel.ALLARD_CHAMPOUX: (0.01, 1.0),
 }
 
+#: Passive floor of Miki's medium in a wall (:meth:`Impedance.porous_layer`):
+#: below f/σ = 0.0012 (just above the 0.00105 where its bulk modulus turns
+#: active) the wall holds the medium's normalised characteristic impedance
+#: and propagation factor, zc and k/k0, at their values there (a
+#: frequency-independent, passive medium), so the layer stays passive at any
+#: frequency: the 0 Hz mode of a closed room is evaluated at a fraction of a
+#: hertz, far below every fitted range.  For σ = 10 kPa·s/m² the floor is at
+#: 12 Hz.  Delany–Bazley and Allard–Champoux turn active near the low end of
+#: their fitted range (about 107 Hz at that σ), too high for such a repair:
+#: their walls raise instead and name Miki's model.
+MIKI_PASSIVE_FLOOR = 0.0012
+
 
 def _model_parameter(f, sigma, model, air):
     return f * air.rho / sigma if model is PorousModel.ALLARD_CHAMPOUX else f / sigma
@@ -434,17 +446,20 @@ def porous_characteristics(frequencies, flow_resistivity, *, model="miki", air=N
     return _characteristics(f, sigma, mod, _air(air))
 
 
-def _characteristics(f, sigma, model, air):
+def _characteristics(f, sigma, model, air, floor=None):
+    """zc (normalised) and k (rad/m); with ``floor``, f/σ is held at >= floor in the factors."""
     a, p, b, q, c, r, d, s = _MODELS[model]
     x = _model_parameter(f, sigma, model, air)
+    if floor is not None:
+        x = np.maximum(x, floor)
     y = x if model is PorousModel.ALLARD_CHAMPOUX else 1000.0 * x
     zc = 1.0 + a * y ** -p - 1j * b * y ** -q
     k = (2.0 * np.pi * f / air.c) * (1.0 + c * y ** -r - 1j * d * y ** -s)
     return zc, k
 
 
-def _layer_impedance(f, sigma, thickness, gap, model, air):
-    zc, k = _characteristics(f, sigma, model, air)
+def _layer_impedance(f, sigma, thickness, gap, model, air, floor=None):
+    zc, k = _characteristics(f, sigma, model, air, floor)
     t = np.tan(k * thickness)          # bounded: Im(k d) < 0 strictly, |t| -> 1 for thick layers
     if gap == 0.0:
         # rigid backing: Zs = −i Zc cot(k d)
@@ -655,10 +670,14 @@ class _Layer:
                 f"porous layer ({self.model.value}, σ = {self.flow_resistivity:g} Pa·s/m²) is used at "
                 f"{span}, outside the model's range "
                 f"{lo:g} < {name} < {hi:g} (here {lo * scale:g}–{hi * scale:g} Hz); the values there are "
-                "extrapolated. (Warned once per wall.)",
+                "extrapolated" + (f" (and below {MIKI_PASSIVE_FLOOR * scale:g} Hz the medium is held at its values "
+                "there, to stay passive)" if self.model is PorousModel.MIKI else "") +
+                ". (Warned once per wall.)",
                 stacklevel=4,
             )
-        z = _layer_impedance(f, self.flow_resistivity, self.thickness, self.air_gap, self.model, air)
+        floor = MIKI_PASSIVE_FLOOR if self.model is PorousModel.MIKI else None
+        z = _layer_impedance(f, self.flow_resistivity, self.thickness, self.air_gap, self.model, air,
+                             floor)
         return 1.0 / z
 
     def describe(self):
@@ -811,8 +830,11 @@ class Impedance(Wall):
         incidence, locally reacting) with the air given to
         :meth:`admittance_at`.  A warning is issued (once per wall) at
         frequencies outside the model's range (:data:`VALIDITY`); where the
-        model gives an active surface (Re z < 0: Delany–Bazley at low f/σ, the
-        defect Miki's modification removes) :meth:`admittance_at` raises.
+        model gives an active surface (Re z < 0: Delany–Bazley and
+        Allard–Champoux at low f/σ, the defect Miki's refit removes within
+        the range) :meth:`admittance_at` raises.  Miki's medium is held at
+        f/σ = :data:`MIKI_PASSIVE_FLOOR` below it, so its wall is passive at
+        every frequency (the 0 Hz mode of a closed room needs that).
 
         Returns
         -------

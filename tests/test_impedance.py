@@ -515,3 +515,73 @@ def test_walls_mapping_equality_repr():
               Impedance.from_table([125, 250], [0.1, 0.2], quantity="alpha")):
         assert eval(repr(w), {"Impedance": Impedance}) == w
     assert af.Impedance is Impedance
+
+
+def test_miki_wall_stays_passive_at_any_frequency():
+    # Miki's (1990) expressions, extrapolated far below their fitted range
+    # (0.01 < f/σ < 1), give an active medium below f/σ ≈ 0.00105 (computed
+    # from the published expressions, see impedance.VALIDITY); the wall holds
+    # the medium at f/σ = MIKI_PASSIVE_FLOOR below that, so Re β > 0 down to
+    # the fraction of a hertz where a closed room's 0 Hz mode is evaluated
+    from acoustic_fem.impedance import MIKI_PASSIVE_FLOOR
+
+    f = np.geomspace(1e-3, 2000.0, 2000)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        for sigma in (2e3, 1e4, 1e5):
+            for d in (0.005, 0.05, 0.3):
+                for gap in (0.0, 0.1):
+                    beta = Impedance.porous_layer(sigma, d, air_gap=gap).admittance_at(f)
+                    assert np.all(beta.real > 0), (sigma, d, gap)
+        # continuous across the floor, and unchanged above it
+        sigma, d = 1e4, 0.05
+        f0 = MIKI_PASSIVE_FLOOR * sigma
+        w = Impedance.porous_layer(sigma, d)
+        b = w.admittance_at([f0 * (1 - 1e-9), f0 * (1 + 1e-9)])
+        assert abs(b[0] - b[1]) < 1e-7 * abs(b[1])  # f moved by 2e-9 relative; |dlnβ/dlnf| ~ 1
+        above = np.array([20.0, 100.0, 400.0])
+        np.testing.assert_allclose(w.admittance_at(above),
+                                   1.0 / porous_layer_impedance(above, sigma, d, model="miki"),
+                                   rtol=1e-13)
+
+
+def test_closed_room_with_a_porous_layer_has_damped_modes():
+    # the 0 Hz mode of a closed room is refined at a fraction of a hertz: the
+    # Miki wall must stay passive there (it raised before the passive floor)
+    from acoustic_fem.verification import structured_box
+
+    mesh = structured_box((1.2, 1.0, 0.8), 3)
+    walls = {"z0": Impedance.porous_layer(1e4, 0.05)}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        m = af.solve_modes(mesh, walls, order=2, count=4)
+    assert np.all(m.decay_rates > 0)  # every mode loses energy to the layer
+    # separable reference for the (1,0,0)-family mode: p = cos(kx x) Z(z) with
+    # Z rigid at z = Lz and ∂p/∂n = -ik β p at z = 0 gives
+    # kz tan(kz Lz) = i k β(f), k² = kx² + kz², kx = π/Lx, the wall taken at
+    # f = c Re k / (2π) (separation of variables in a box with one locally
+    # reacting wall, Morse & Ingard 1968 §9.5); solved here by a scalar root
+    from scipy.optimize import fsolve
+
+    c, Lx, Lz = Air().c, 1.2, 0.8
+    kx = math.pi / Lx
+    w = walls["z0"]
+
+    def eq(v):
+        kz = complex(v[0], v[1])
+        k = cmath.sqrt(kx**2 + kz**2)
+        beta = complex(w.admittance_at(c * k.real / (2 * math.pi)))
+        r = kz * cmath.tan(kz * Lz) - 1j * k * beta
+        return [r.real, r.imag]
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        v = fsolve(eq, [0.3, -0.3], xtol=1e-13)
+    k = cmath.sqrt(kx**2 + complex(v[0], v[1]) ** 2)
+    f_ref, d_ref = c * k.real / (2 * math.pi), c * k.imag
+    assert max(abs(x) for x in eq(v)) < 1e-10
+    i = int(np.argmin(np.abs(m.frequencies - f_ref)))
+    # P2 at 3 cells/m (about 7 cells per wavelength here): frequency error
+    # ~1e-4 (P2 eigenvalue error ~ (kh)^4); 1e-3 and 1 % on δ leave room
+    assert m.frequencies[i] == pytest.approx(f_ref, rel=1e-3)
+    assert m.decay_rates[i] == pytest.approx(d_ref, rel=1e-2)
