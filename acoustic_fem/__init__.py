@@ -6,6 +6,7 @@ underscore are private.
 
 from ._errors import (
     AcousticFemError,
+    BudgetExceededError,
     ConvergenceError,
     InputError,
     MeshError,
@@ -29,7 +30,7 @@ from .impedance import (
 )
 from .mesh import Mesh, MeshWarning
 from .mesh_io import from_meshio, read_mesh, write_mesh
-from .modes import DampingMethod, Modes, ResolutionWarning, solve_modes
+from .modes import DampingMethod, EstimateWarning, Modes, ResolutionWarning, solve_modes
 from .walls import PressureRelease, Rigid, Wall
 from .study import BoxModel, Combine, SweepResult, plot_tracks, sweep
 from .tracking import Tracks, mac_matrix, track_modes
@@ -46,7 +47,7 @@ __all__ = [
     "SolverError", "UnknownSurfaceError", "OutputExistsError", "MeshWarning",
     "Air", "Assembly", "assemble", "boundary_mass", "DofMap", "CellType", "Mesh",
     "read_mesh", "write_mesh", "from_meshio", "Modes", "solve_modes", "DampingMethod",
-    "ResolutionWarning",
+    "ResolutionWarning", "EstimateWarning", "BudgetExceededError",
     "Rigid", "PressureRelease", "Wall", "Impedance", "Incidence", "PorousModel",
     "absorption_coefficient", "impedance_from_absorption", "write_vtk", "write_modes_csv", "analytic", "geometry",
     "ModelTooLargeError", "CostEstimate", "estimate_cost", "check_memory", "available_memory",
@@ -70,10 +71,30 @@ __all__ += [
 ]
 
 # forced harmonic response at listening seats
-from .response import (Method, PointSource, ReceiverPlane, Response, SmoothingWindow,
-                       receiver_line, receiver_plane, solve_response)
+from .response import (Method, PointSource, PressureField, ReceiverPlane, Response,
+                       SmoothingWindow, receiver_line, receiver_plane, solve_response)
 
 __all__ += [
     "PointSource", "solve_response", "Response", "Method", "SmoothingWindow", "ReceiverPlane",
-    "receiver_line", "receiver_plane",
+    "receiver_line", "receiver_plane", "PressureField",
+]
+
+# placement of sources (and seats) for even low-frequency coverage
+from .placement import (Objective, PlacementResult, SeatResult, SourceLayout, layout_objective,
+                        optimise_placement, optimise_seats)
+
+__all__ += [
+    "Objective", "PlacementResult", "SeatResult", "SourceLayout", "layout_objective",
+    "optimise_placement", "optimise_seats",
+]
+
+# eigensolver paths for large models: PETSc/SLEPc under MPI, AMG-preconditioned LOBPCG
+from ._errors import MissingDependencyError
+from ._distributed_eigen import FactorKind, MpiSolver, petsc_available
+from ._eigen import LargeModelBackend
+from ._lean_eigen import AmgSolver
+
+__all__ += [
+    "MissingDependencyError", "MpiSolver", "FactorKind", "petsc_available", "AmgSolver",
+    "LargeModelBackend",
 ]

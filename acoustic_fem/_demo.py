@@ -200,7 +200,8 @@ columns = 3
 
 # ---------------------------------------------------------------- outputs
 [outputs]
-vtk = true                         # .vtu per mode and a .pvd collection
+vtk = true                         # .vtu per mode and a .pvd collection; with sources, also
+                                   # the response field at the map frequencies (response.pvd)
 plots = true                       # PNG plots
 report = true                      # self-contained report.html
 ear_height_m = 1.15                # height of the SPL map and the mode-shape slices

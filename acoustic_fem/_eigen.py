@@ -15,6 +15,7 @@ against it.
 
 from __future__ import annotations
 
+import enum
 import math
 import time
 from dataclasses import dataclass, field
@@ -25,7 +26,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from threadpoolctl import threadpool_limits
 
-from ._errors import ConvergenceError, SolverError
+from ._errors import ConvergenceError, InputError, SolverError
 from ._linalg import factorize
 from ._lanczos import LanczosStall, block_lanczos
 
@@ -147,6 +148,11 @@ def solve_generalized(
         A positive guess of the lowest nonzero eigenvalue (sets the first shift).
     n_estimate : int
         Estimated number of wanted eigenvalues (Weyl's law), sizes the windows.
+    backend : str, MpiSolver or AmgSolver
+        A factorisation name ("auto", "cholmod", "superlu") for the shift
+        windows, or a large-model path ("petsc" / MpiSolver: SLEPc under MPI,
+        "amg" / AmgSolver: AMG-preconditioned LOBPCG), which replaces them;
+        the normalisation below is the same for every path.
 
     Returns
     -------
@@ -157,7 +163,12 @@ def solve_generalized(
     t0 = time.perf_counter()
     n = K.shape[0]
     report = EigenReport()
-    if n <= DENSE_LIMIT:
+    large = large_model_solver(backend)
+    if large is not None:
+        lam, X, report.method, report.windows = _solve_large(
+            K, M, large, count=count, lam_max=lam_max, lam_guess=lam_guess,
+            n_estimate=n_estimate)
+    elif n <= DENSE_LIMIT:
         lam, X = _dense(K, M, count, lam_max)
         report.method = "dense (LAPACK eigh)"
     else:
@@ -173,6 +184,57 @@ def solve_generalized(
     X = X * np.sign(X[idx, np.arange(X.shape[1])])
     report.seconds = time.perf_counter() - t0
     return lam, X, report
+
+
+class LargeModelBackend(str, enum.Enum):
+    """Eigensolver paths for large models, named as ``backend`` strings.
+
+    PETSC
+        SLEPc Krylov–Schur, shift-and-invert, MUMPS, under MPI
+        (:class:`~acoustic_fem.MpiSolver` with its defaults).
+    AMG
+        LOBPCG preconditioned by algebraic multigrid, no factorisation
+        (:class:`~acoustic_fem.AmgSolver` with its defaults).
+    """
+
+    PETSC = "petsc"
+    AMG = "amg"
+
+
+def large_model_solver(backend):
+    """The MpiSolver / AmgSolver that ``backend`` asks for, or None (a factorisation name)."""
+    from ._distributed_eigen import MpiSolver
+    from ._lean_eigen import AmgSolver
+
+    if isinstance(backend, (MpiSolver, AmgSolver)):
+        return backend
+    if isinstance(backend, enum.Enum):
+        backend = backend.value
+    if not isinstance(backend, str):
+        raise InputError(
+            f"backend={backend!r} is not understood: give a name ('auto', 'cholmod', "
+            "'superlu', 'petsc', 'amg') or an MpiSolver(...) / AmgSolver(...).")
+    if backend == LargeModelBackend.PETSC.value:
+        return MpiSolver()
+    if backend == LargeModelBackend.AMG.value:
+        return AmgSolver()
+    return None
+
+
+def _solve_large(K, M, solver, *, count, lam_max, lam_guess, n_estimate):
+    from ._distributed_eigen import MpiSolver, solve_mpi
+    from ._lean_eigen import solve_amg
+
+    if isinstance(solver, MpiSolver):
+        lam, X, runs = solve_mpi(K, M, solver, count=count, lam_max=lam_max,
+                                 lam_guess=lam_guess, n_estimate=n_estimate)
+        method = (f"SLEPc Krylov-Schur shift-invert, MUMPS {solver.factor.value}, "
+                  f"{solver.ranks} MPI rank{'s' if solver.ranks > 1 else ''}")
+    else:
+        lam, X, runs = solve_amg(K, M, solver, count=count, lam_max=lam_max,
+                                 lam_guess=lam_guess, n_estimate=n_estimate)
+        method = "LOBPCG, smoothed-aggregation AMG preconditioner"
+    return lam, X, method, runs
 
 
 def _windows(K, M, count, lam_max, lam_guess, n_estimate, backend, max_per_window,

@@ -18,6 +18,7 @@ __all__ = [
     "ModelTooLargeError",
     "SolverError",
     "ConvergenceError",
+    "BudgetExceededError",
 ]
 
 
@@ -77,3 +78,44 @@ class ConvergenceError(SolverError):
     def __init__(self, message: str, partial=None):
         super().__init__(message)
         self.partial = partial
+
+
+class BudgetExceededError(ConvergenceError):
+    """An accuracy-target solve stopped because its next step would exceed the budget.
+
+    Raised by ``solve_modes(..., tol=...)`` and
+    :func:`~acoustic_fem.solve_to_tolerance` *before* a step that is predicted
+    to need more DOFs or seconds than the budget stated up front
+    (``max_dofs``, ``max_seconds``) or more solves than ``max_steps``.
+
+    Attributes
+    ----------
+    partial : Modes, AccurateModes or None
+        What was solved so far (the last step, its error estimates attached;
+        ``solve_modes`` gives a :class:`~acoustic_fem.Modes`,
+        ``solve_to_tolerance`` an :class:`~acoustic_fem.AccurateModes`); None
+        when the very first step was refused.
+    steps : tuple of dict
+        One entry per solve made (DOFs, largest estimated error, seconds, action).
+    budget : mapping
+        The budget stated before the first solve.
+    """
+
+    def __init__(self, message: str, partial=None, steps=(), budget=None):
+        super().__init__(message, partial=partial)
+        self.steps = tuple(steps)
+        self.budget = budget
+
+
+class MissingDependencyError(AcousticFemError, ImportError):
+    """An optional part (PETSc/SLEPc and MPI, pyamg, ...) is needed but not installed.
+
+    Attributes
+    ----------
+    install : str
+        The command that installs the missing part.
+    """
+
+    def __init__(self, message: str, install: str = ""):
+        super().__init__(message)
+        self.install = install

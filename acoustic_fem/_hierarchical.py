@@ -252,6 +252,69 @@ class Enrichment:
             Me *= sij
         return Ke, Me
 
+    def boundary_mass(self, names):
+        """Enriched boundary mass B = ∫_S φ_i φ_j dS over the named surfaces.
+
+        The traces of the W functions on a boundary facet are the W functions
+        of the facet itself (edge functions of its edges, for P2 on
+        tetrahedra also the face bubble), with the same global orientation;
+        the others vanish there.  Curved facets are integrated through their
+        P2 geometry, as in :func:`acoustic_fem.assembly.boundary_mass`.
+
+        Parameters
+        ----------
+        names : sequence of str
+
+        Returns
+        -------
+        (n, n) csr_matrix, n = dofs.n_dofs + n_w (V first, then W).
+        """
+        import scipy.sparse as sp
+
+        from .assembly import boundary_mass as _bm
+
+        mesh, order = self.mesh, self.order
+        nv = self.dofs.n_dofs
+        n = nv + self.n_w
+        total = sp.csr_matrix((n, n))
+        fct = mesh.cell_type.facet
+        for name in names:  # a loop over regions, each vectorised over facets
+            fd = self.dofs.facet_dofs(name)
+            if fd.size == 0:
+                continue
+            if fct is None:  # 1D: the W functions vanish at the end points
+                B = _bm(self.dofs, name).tocoo()
+                total = total + sp.csr_matrix((B.data, (B.row, B.col)), shape=(n, n))
+                continue
+            f = mesh.boundaries[name]
+            nf, nvf = len(f), mesh.dim  # facets, vertices per facet
+            loc = EDGES[fct]
+            fv = f[:, :nvf]
+            w_num = [mesh.edge_index(fv[:, loc].reshape(-1, 2)).reshape(nf, len(loc))]
+            sgn = [np.where(fv[:, loc[:, 0]] < fv[:, loc[:, 1]], 1.0, -1.0) if order == 2
+                   else np.ones((nf, len(loc)))]
+            if order == 2 and fct is CellType.TRIANGLE:  # face bubble of a tetrahedron face
+                _, ukeys, _ = self._faces
+                pos = np.searchsorted(ukeys, row_keys(fv, mesh.n_points))
+                w_num.append(self.n_edges + pos[:, None])
+                sgn.append(np.ones((nf, 1)))
+            cd = np.hstack([fd, nv + np.hstack(w_num)])
+            s = np.hstack([np.ones(fd.shape), *sgn])
+            d, D = fct.dim, mesh.dim
+            xi, w = quadrature(d, 2 * (order + 1) + (2 if mesh.geometry_order == 2 else 0))
+            geo = reference_element(fct, mesh.geometry_order)
+            X = mesh.points[f, :D]
+            J = np.einsum("eki,qka->eqia", X, geo.gradients(xi))
+            JtJ = np.einsum("eqia,eqib->eqab", J, J)
+            meas = np.sqrt(np.abs(np.linalg.det(JtJ))) if d > 1 else np.sqrt(JtJ[..., 0, 0])
+            phi = np.hstack([reference_element(fct, order).values(xi),
+                             _w_values(fct, order, xi)[0]])
+            iu, ju = np.triu_indices(phi.shape[1])
+            Be = (meas * w[None, :]) @ (phi[:, iu] * phi[:, ju])
+            Be *= s[:, iu] * s[:, ju]
+            total = total + _csr(cd, n, Be)[0]
+        return total.tocsr()
+
     def assemble(self):
         """Enriched stiffness and mass, (n_V + n_W) square CSR; also the local entries.
 

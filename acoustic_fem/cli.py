@@ -11,11 +11,12 @@ Subcommands::
     materials                   list the material library with its sources
     modes MESH --out DIR        modes of a mesh file without a scenario
     info MESH                   regions, areas and volume of a mesh file
+    verify --out DIR [--quick]  run the published-reference checks, write CSV + HTML
 
 Exit codes: 0 success, 2 bad input (the scenario, a file, an option, an
 existing output), 1 failure (a solve that did not succeed, an internal
-error), 130 interrupted (Ctrl-C; no partial results are kept).  Errors are
-one line on stderr, no traceback.  Progress bars go to stderr when it is a
+error, a verification check that failed), 130 interrupted (Ctrl-C; no
+partial results are kept).  Errors are one line on stderr, no traceback.  Progress bars go to stderr when it is a
 terminal (never with ``--quiet``); the library itself never prints, it
 reports progress through callbacks.
 """
@@ -43,7 +44,8 @@ _EPILOG = ("exit codes: 0 success, 2 bad input, 1 failure, 130 interrupted. "
 
 #: Stage names of the progress callbacks and how the bars label them.
 STAGES = {"meshing": "meshing", "assembly": "assembly", "modes": "modes",
-          "sweep": "frequency sweep", "writing": "writing VTK"}
+          "sweep": "frequency sweep", "writing": "writing VTK",
+          "verify": "verification groups"}
 
 
 class _Parser(argparse.ArgumentParser):
@@ -341,6 +343,43 @@ def _cmd_info(args) -> int:
     return 0
 
 
+def _cmd_verify(args) -> int:
+    from .verification import GROUPS, run_checks, write_report
+
+    out = Path(args.out)
+    _check_out_free(out, args.force)
+    groups = None
+    if args.group:
+        bad = [g for g in args.group if g not in GROUPS]
+        if bad:
+            raise InputError(f"--group {bad[0]!r} is not a verification group; choose from "
+                             f"{', '.join(GROUPS)}.")
+        groups = list(dict.fromkeys(args.group))
+    rep = _reporter(args)
+    t0 = time.perf_counter()
+    results = []
+    try:
+        for i, g in enumerate(groups or GROUPS):  # a loop over check groups, for progress
+            rep("verify", i, len(groups or GROUPS))
+            results.extend(run_checks(quick=args.quick, groups=[g]))
+        rep("verify", len(groups or GROUPS), len(groups or GROUPS))
+    finally:
+        rep.close()
+    write_report(results, out, overwrite=args.force)
+    n_fail = sum(not r.passed for r in results)
+    mode = "quick" if args.quick else "full"
+    status = ("all passed" if n_fail == 0 else f"{n_fail} FAILED")
+    line = (f"verification ({mode}): {len(results)} checks, {status} in "
+            f"{time.perf_counter() - t0:.0f} s; wrote {out / 'verification.csv'} and "
+            f"{out / 'verification.html'}")
+    if n_fail:
+        # one line on stderr, shown even with --quiet, like every failure
+        print(f"acoustic-fem: failed: {line}; see the FAIL rows", file=sys.stderr)
+        return 1
+    _say(args, line)
+    return 0
+
+
 # ---------------------------------------------------------------- parser
 def build_parser() -> argparse.ArgumentParser:
     common = argparse.ArgumentParser(add_help=False)
@@ -424,6 +463,24 @@ def build_parser() -> argparse.ArgumentParser:
                        help="print the regions, areas and volume of a mesh file")
     i.add_argument("mesh")
     i.set_defaults(func=_cmd_info)
+
+    from .verification import GROUPS
+
+    v = sub.add_parser("verify", parents=[common, force], epilog=_EPILOG,
+                       help="run the published-reference checks and write a report (CSV + HTML)",
+                       description="Solve cases with known answers (tubes, ducts, boxes with "
+                                   "every wall mix, cylinder, sphere, convergence slopes, the "
+                                   "error estimate, pressure-chamber limit, reciprocity, damped "
+                                   "tube and box) on "
+                                   "this machine and write verification.csv and "
+                                   "verification.html into DIR. Exit 0 if every check passes, "
+                                   "1 if any fails.")
+    v.add_argument("--out", required=True, help="report folder to create")
+    v.add_argument("--quick", action="store_true",
+                   help="smaller set of cases (a few minutes on 2 cores)")
+    v.add_argument("--group", action="append", metavar="GROUP",
+                   help="run only this group (repeatable): " + ", ".join(GROUPS))
+    v.set_defaults(func=_cmd_verify)
     return p
 
 

@@ -39,7 +39,26 @@ Measured effectivity (estimated / true relative frequency error, tests and
 bench of this project): P2 0.83–0.94 on boxes with rigid and
 pressure-release walls and on a cylinder, 0.57–0.91 on a sphere (curved
 walls, two mesh sizes each); P1 0.54–0.97 on the same cases.  The corrected
-frequencies are 5–15 times more accurate than the raw ones there.
+frequencies are 5–15 times more accurate than the raw ones there.  Damped
+modes (tests/test_estimate.py, against exact roots): tube with an
+admittance end 0.97–1.00 (frequency and decay rate, P1 and P2); box with
+an admittance wall, P2, 0.86–1.2 (frequency) and 0.76–1.11 (decay rate).
+
+Damped modes (impedance walls, ``damping="exact"``).  The same enrichment
+applied to the complex eigenpair (k_h, x_h) of the quadratic problem
+Q(k) = K + ik Σ_s β_s B_s − k² M (complex symmetric; β of a
+frequency-dependent wall frozen at the mode's frequency): the W correction
+solves Q_WW(k_h) e = −Q_WV(k_h) x_h by Jacobi-preconditioned COCG (the CG of
+complex symmetric matrices, van der Vorst & Melissen, IEEE Trans. Magn.
+26(2), 1990; from memory), and a Galerkin projection of Q on span{x_j, e_j}
+of the mode's cluster (modes within 2 % in |k|) gives the corrected root
+k_c.  The estimated relative errors are |Re k_h / Re k_c − 1| for the
+frequency and |Im k_h / Im k_c − 1| for the decay rate δ = c Im k (NaN for
+the frequency of the near-0 Hz mode of a room without pressure-release
+surfaces, whose relative frequency error is undefined).  There is no
+min-max ordering for complex roots, so the corrected values are not bounds.
+Modes from ``damping="perturbation"`` are first-order approximations, not
+eigenpairs of the discrete problem: they are not estimated (NaN).
 
 Not estimated: the error of the geometry (a curved wall approximated by P2
 cells is the same in V and in V ⊕ W) and of the data (speed of sound); for
@@ -94,6 +113,13 @@ class ModeErrors:
         The method and its source.
     info : mapping
         What was done: W size, solver iterations, times.
+    decay_rate_errors : (n_modes,) float array
+        Estimated relative error |δ_h − δ|/δ of each decay rate (damped
+        modes); 0 for undamped modes, whose decay rate 0 is exact.
+    corrected_decay_rates : (n_modes,) float array
+        Corrected decay rates c Im k_c in 1/s (0 for undamped modes).
+
+    For damped modes ``corrected_eigenvalues`` is complex (k_c²).
     """
 
     frequency_errors: np.ndarray
@@ -102,14 +128,21 @@ class ModeErrors:
     cell_indicators: np.ndarray | None = None
     method: str = METHOD
     info: Mapping = field(default_factory=dict)
+    decay_rate_errors: np.ndarray = None  # type: ignore[assignment]
+    corrected_decay_rates: np.ndarray = None  # type: ignore[assignment]
 
     def __post_init__(self) -> None:
+        n = len(np.asarray(self.frequency_errors))
+        for name in ("decay_rate_errors", "corrected_decay_rates"):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.zeros(n))
         for name in ("frequency_errors", "corrected_frequencies", "corrected_eigenvalues",
-                     "cell_indicators"):
+                     "cell_indicators", "decay_rate_errors", "corrected_decay_rates"):
             a = getattr(self, name)
             if a is None:
                 continue
-            a = np.array(a, dtype=float)
+            a = np.array(a, dtype=complex if (name == "corrected_eigenvalues"
+                                              and np.iscomplexobj(a)) else float)
             a.setflags(write=False)
             object.__setattr__(self, name, a)
         object.__setattr__(self, "info", MappingProxyType(dict(self.info)))
@@ -119,18 +152,22 @@ class ModeErrors:
 
     @property
     def max_error(self) -> float:
-        """Largest estimated relative frequency error (0 for no modes)."""
-        return float(self.frequency_errors.max()) if len(self) else 0.0
+        """Largest estimated relative frequency error, NaN entries ignored (0 for no modes)."""
+        e = self.frequency_errors[~np.isnan(self.frequency_errors)]
+        return float(e.max()) if e.size else 0.0
 
     def columns(self) -> dict:
         """Table columns to put beside ``Modes.table()``: name -> (n_modes,) array.
 
-        ``estimated_relative_error`` (the estimate of (f_h − f)/f) and
+        ``estimated_relative_error`` (the estimate of (f_h − f)/f),
         ``corrected_frequency_hz`` (the enriched-space value, labelled as
-        corrected, not as the solution).
+        corrected, not as the solution), ``estimated_decay_rate_error`` and
+        ``corrected_decay_rate_per_s`` (damped modes; 0 for undamped ones).
         """
         return {"estimated_relative_error": self.frequency_errors,
-                "corrected_frequency_hz": self.corrected_frequencies}
+                "corrected_frequency_hz": self.corrected_frequencies,
+                "estimated_decay_rate_error": self.decay_rate_errors,
+                "corrected_decay_rate_per_s": self.corrected_decay_rates}
 
     def cell_data(self, frequencies) -> dict:
         """Element-wise indicators as VTK cell data: name -> (n_cells,) array.
@@ -228,8 +265,9 @@ def estimate_errors(modes, *, assembly: Assembly | None = None, indicators: bool
     Parameters
     ----------
     modes : Modes
-        Real modes from :func:`~acoustic_fem.modes.solve_modes` (rigid and
-        pressure-release walls).
+        Modes from :func:`~acoustic_fem.modes.solve_modes`: real (rigid and
+        pressure-release walls) or damped (impedance walls, exact damping;
+        see "Damped modes" in the module notes).
     assembly : Assembly, optional
         Not needed (the enriched matrices are assembled here); accepted so that
         callers can pass the one they have, which is checked for consistency.
@@ -242,7 +280,8 @@ def estimate_errors(modes, *, assembly: Assembly | None = None, indicators: bool
     -------
     ModeErrors
         ``frequency_errors`` (n_modes,), ``corrected_frequencies`` (n_modes,),
-        ``cell_indicators`` (n_cells, n_modes) or None.
+        ``cell_indicators`` (n_cells, n_modes) or None; ``decay_rate_errors``
+        and ``corrected_decay_rates`` (n_modes,).
     """
     from .modes import Modes
 
@@ -250,15 +289,16 @@ def estimate_errors(modes, *, assembly: Assembly | None = None, indicators: bool
     if not isinstance(modes, Modes):
         raise InputError(f"estimate_errors needs the Modes from solve_modes, got "
                          f"{type(modes).__name__}.")
-    if np.iscomplexobj(modes.shapes) or np.any(modes.decay_rates != 0):
-        raise InputError(
-            "estimate_errors handles undamped modes (rigid and pressure-release walls); these "
-            "modes are damped — estimate the undamped problem (impedance walls made rigid) "
-            "instead."
-        )
     if assembly is not None and (assembly.dofs.mesh is not modes.mesh
                                  or assembly.order != modes.order):
         raise InputError("the assembly given was made for another mesh or element order.")
+    if np.iscomplexobj(modes.shapes) or np.any(modes.decay_rates != 0):
+        if dict(modes.info).get("damping") == "perturbation":
+            raise InputError(
+                "these damped modes come from damping='perturbation' (first-order "
+                "approximations, not eigenpairs of the discrete problem) and cannot be "
+                "estimated; solve with damping='exact' for an error estimate.")
+        return _estimate_damped(modes, indicators=indicators, rtol=rtol, maxiter=maxiter)
     dofs = modes.dofs
     lam = np.asarray(modes.eigenvalues, dtype=float)
     m = lam.size
@@ -345,6 +385,203 @@ def estimate_errors(modes, *, assembly: Assembly | None = None, indicators: bool
         seconds=time.perf_counter() - t0,
     )
     return ModeErrors(eta, f_c, lam_c, ind, info=info)
+
+
+# --------------------------------------------------------------- damped modes
+#: Modes whose |k| differ by less than this share are corrected together.
+_CLUSTER = 0.02
+
+
+def _cocg_shifted(K, M, Cs, ks, betas, B, *, rtol, maxiter):
+    """Solve Q_i x_i = b_i, Q_i = K − k_i² M + i k_i Σ_s β_si C_s, for every column i.
+
+    Jacobi-preconditioned COCG (conjugate orthogonal CG for complex symmetric
+    matrices: CG with the unconjugated bilinear form; van der Vorst &
+    Melissen 1990).  K, M, C_s : (n, n) sparse real symmetric; ks : (m,)
+    complex; betas : (n_s, m) complex; B : (n, m) complex.
+    Returns X (n, m), iterations (m,), relative residuals (m,).
+    """
+    n, m = B.shape
+    coef = [1j * ks * b for b in betas]  # (m,) each
+    D = K.diagonal()[:, None] - M.diagonal()[:, None] * ks[None, :] ** 2
+    for C, c in zip(Cs, coef):
+        D = D + C.diagonal()[:, None] * c[None, :]
+    Dinv = np.where(np.abs(D) > 0, 1.0 / np.where(D == 0, 1.0, D), 0.0)
+
+    def apply(P, a):
+        out = K @ P - (M @ P) * ks[a] ** 2
+        for C, c in zip(Cs, coef):
+            out = out + (C @ P) * c[a]
+        return out
+
+    X = np.zeros((n, m), dtype=complex)
+    R = np.array(B, dtype=complex)
+    bnorm = np.linalg.norm(R, axis=0)
+    active = bnorm > 0
+    its = np.zeros(m, dtype=int)
+    Z = Dinv * R
+    P = Z.copy()
+    rz = np.einsum("ij,ij->j", R, Z)
+    for _ in range(maxiter):
+        if not active.any():
+            break
+        a = np.flatnonzero(active)
+        AP = apply(P[:, a], a)
+        pAp = np.einsum("ij,ij->j", P[:, a], AP)
+        ok = np.abs(pAp) > 1e-300
+        active[a[~ok]] = False  # breakdown: keep what was reached
+        a, AP, pAp = a[ok], AP[:, ok], pAp[ok]
+        if a.size == 0:
+            break
+        alpha = rz[a] / pAp
+        X[:, a] += P[:, a] * alpha
+        R[:, a] -= AP * alpha
+        its[a] += 1
+        done = np.linalg.norm(R[:, a], axis=0) <= rtol * bnorm[a]
+        Za = Dinv[:, a] * R[:, a]
+        rz_new = np.einsum("ij,ij->j", R[:, a], Za)
+        P[:, a] = Za + P[:, a] * (rz_new / np.where(rz[a] == 0, 1.0, rz[a]))
+        rz[a] = rz_new
+        active[a[done]] = False
+    res = np.linalg.norm(R, axis=0) / np.where(bnorm > 0, bnorm, 1.0)
+    return X, its, res
+
+
+def _qep_roots(Kc, Cc, Mc):
+    """All roots k of the small quadratic (Kc + ik Cc − k² Mc) y = 0 (companion form)."""
+    from threadpoolctl import threadpool_limits
+    import scipy.linalg as sla
+
+    r = Kc.shape[0]
+    eye, zero = np.eye(r), np.zeros((r, r))
+    A = np.block([[zero, eye], [Kc, 1j * Cc]])
+    Bm = np.block([[eye, zero], [zero, Mc]])
+    with threadpool_limits(1, user_api="blas"):
+        k = sla.eig(A, Bm, right=False)
+    return k[np.isfinite(k)]
+
+
+def _estimate_damped(modes, *, indicators, rtol, maxiter) -> ModeErrors:
+    """The hierarchical estimate of damped modes (module notes, "Damped modes")."""
+    from scipy.optimize import linear_sum_assignment
+
+    from .impedance import Impedance
+
+    t0 = time.perf_counter()
+    dofs = modes.dofs
+    mesh = dofs.mesh
+    ks = np.asarray(modes.wavenumbers, dtype=complex)
+    m = ks.size
+    if m == 0:
+        return ModeErrors(np.zeros(0), np.zeros(0), np.zeros(0, dtype=complex),
+                          np.zeros((mesh.n_cells, 0)) if indicators else None,
+                          info=dict(n_w=0, seconds=0.0))
+    air = modes.air
+    absorbing = [n for n, w in modes.walls.items() if isinstance(w, Impedance)
+                 and not (not w.frequency_dependent and w.constant_admittance == 0)]
+    # β per surface and mode, at the mode's frequency (never below the floor
+    # solve_modes uses: 1 % of c / (2 x the mesh's largest extent))
+    extent = float(np.ptp(mesh.points[:, : mesh.dim], axis=0).max())
+    f_floor = 0.01 * air.c / (2.0 * extent)
+    freq = air.c * np.abs(ks.real) / (2 * math.pi)
+    betas = np.vstack([np.asarray(modes.walls[n].admittance_at(np.maximum(freq, f_floor), air),
+                                  dtype=complex).reshape(m) for n in absorbing]) \
+        if absorbing else np.zeros((0, m), dtype=complex)
+    en = enrich(dofs)
+    K, M, Ke, _ = en.assemble()
+    Bs = [en.boundary_mass([n]) for n in absorbing]
+    t_asm = time.perf_counter() - t0
+    nv = dofs.n_dofs
+    fixed_names = [n for n, w in modes.walls.items() if w.fixes_pressure]
+    fixed_w = en.boundary_w(fixed_names)
+    free_w = np.setdiff1d(np.arange(en.n_w), fixed_w, assume_unique=True)
+    rows = nv + free_w
+
+    def blocks(A):
+        Aw = A[rows]
+        return Aw[:, rows], Aw[:, :nv], A[:nv][:, :nv]
+
+    K_WW, K_WV, K_VV = blocks(K)
+    M_WW, M_WV, M_VV = blocks(M)
+    Cb = [blocks(B) for B in Bs]
+    del K, M, Bs
+    if not indicators:
+        del Ke
+    U = np.asarray(modes.shapes, dtype=complex)
+    coef = [1j * ks * b for b in betas]
+    R = K_WV @ U - (M_WV @ U) * ks**2
+    for (_, C_WV, _), c in zip(Cb, coef):
+        R = R + (C_WV @ U) * c
+    t1 = time.perf_counter()
+    E = np.empty_like(R)
+    its = np.zeros(m, dtype=int)
+    res = np.zeros(m)
+    for start in range(0, m, _CG_BLOCK):  # column blocks bound the work arrays
+        b = slice(start, start + _CG_BLOCK)
+        E[:, b], its[b], res[b] = _cocg_shifted(K_WW, M_WW, [c[0] for c in Cb], ks[b],
+                                                betas[:, b], -R[:, b], rtol=rtol,
+                                                maxiter=maxiter)
+    del R
+    t_solve = time.perf_counter() - t1
+    unresolved = res > 0.1  # the W problem did not converge: the mesh misses the mode
+    # Galerkin (unconjugated) projections on span{U, E}: (2m, 2m) per matrix
+    def project(A_VV, A_WV, A_WW):
+        uu = U.T @ (A_VV @ U)
+        ue = (A_WV @ U).T @ E
+        ee = E.T @ (A_WW @ E)
+        return np.block([[uu, ue], [ue.T, ee]])
+
+    Kp = project(K_VV, K_WV, K_WW)
+    Mp = project(M_VV, M_WV, M_WW)
+    Cp = [project(c[2], c[1], c[0]) for c in Cb]
+    kc = np.full(m, np.nan + 0j)
+    scale = np.abs(ks)
+    for i in range(m):  # a loop over modes (small dense problems)
+        cl = np.flatnonzero(np.abs(ks - ks[i]) <= _CLUSTER * max(scale[i], 1e-12))
+        idx = np.concatenate([cl, m + cl])
+        Cc = sum((b[i] * C[np.ix_(idx, idx)] for b, C in zip(betas, Cp)),
+                 np.zeros((idx.size, idx.size), dtype=complex))
+        roots = _qep_roots(Kp[np.ix_(idx, idx)], Cc, Mp[np.ix_(idx, idx)])
+        if roots.size < cl.size:  # pragma: no cover - the projection lost roots
+            continue
+        cost = np.abs(ks[cl][:, None] - roots[None, :])
+        r_i, c_i = linear_sum_assignment(cost)  # distinct roots for a cluster's modes
+        pos = np.flatnonzero(cl[r_i] == i)
+        kc[i] = roots[c_i[pos[0]]] if pos.size else np.nan
+    kc[unresolved] = np.nan
+    with np.errstate(divide="ignore", invalid="ignore"):
+        near_zero = np.abs(ks.real) <= 1e-8 * max(float(scale.max()), 1e-300)
+        eta_f = np.where(near_zero, np.nan, np.abs(ks.real / kc.real - 1.0))
+        eta_d = np.where(kc.imag > 0, np.abs(ks.imag / kc.imag - 1.0), np.nan)
+    eta_f[unresolved & ~near_zero] = np.inf
+    eta_d[unresolved] = np.inf
+    f_c = air.c * np.abs(kc.real) / (2 * math.pi)
+    d_c = air.c * kc.imag
+    ind = None
+    if indicators:
+        nvb = dofs.cell_dofs.shape[1]
+        nb = en.cell_dofs.shape[1]
+        Kloc = local_w_block(Ke, nvb, nb)
+        Efull = np.zeros((en.n_w, m), dtype=complex)
+        Efull[free_w] = E
+        El = Efull[en.cell_w]
+        energy = np.einsum("ekm,ekm->em", El.conj(), Kloc @ El).real
+        tot = energy.sum(axis=0)
+        share = np.where(np.isfinite(eta_f), eta_f, 0.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ind = np.where(tot > 0, energy / tot, 0.0) * share
+    info = dict(
+        method=METHOD + "; damped modes: complex symmetric W correction (COCG) and Galerkin "
+                        "projection of the quadratic problem",
+        order=dofs.order, enriched_order=dofs.order + 1, n_v=int(nv), n_w=int(free_w.size),
+        cg_iterations=its.tolist(), cg_max_iterations=int(its.max()),
+        cg_relative_residual=float(res.max()),
+        unresolved_modes=np.flatnonzero(unresolved).tolist(),
+        near_zero_modes=np.flatnonzero(near_zero).tolist(),
+        assembly_seconds=t_asm, solve_seconds=t_solve, seconds=time.perf_counter() - t0,
+    )
+    return ModeErrors(eta_f, f_c, kc**2, ind, info=info, decay_rate_errors=eta_d,
+                      corrected_decay_rates=d_c)
 
 
 # --------------------------------------------------------------- accuracy target
@@ -442,7 +679,7 @@ def _predict_dofs_refined(mesh, order: int) -> int:
 def solve_to_tolerance(mesh, walls=None, *, tol: float, fmax: float, order: int = 2,
                        air=None, max_dofs: int | None = DEFAULT_MAX_DOFS,
                        max_seconds: float | None = None, backend: str = "auto",
-                       max_steps: int = 6) -> AccurateModes:
+                       max_steps: int = 6, indicators: bool = False) -> AccurateModes:
     """Solve the modes below ``fmax`` until every estimated frequency error is <= ``tol``.
 
     The budget (``max_dofs``, ``max_seconds``) is fixed before the first
@@ -466,14 +703,21 @@ def solve_to_tolerance(mesh, walls=None, *, tol: float, fmax: float, order: int 
     judged by a corrected figure (``judged_errors``).
 
     Before a step it predicts the DOFs (and, from the last step's time, the
-    seconds) and stops with :class:`~acoustic_fem.ConvergenceError` when the
+    seconds) and stops with :class:`~acoustic_fem.BudgetExceededError` (a
+    :class:`~acoustic_fem.ConvergenceError`) when the
     prediction exceeds the budget; the error's ``partial`` holds the
     :class:`AccurateModes` of the last step (``met`` False).
 
     Parameters
     ----------
     mesh : Mesh or callable h -> Mesh
-    walls : mapping of surface name -> Rigid() / PressureRelease(), optional
+    walls : mapping of surface name -> Rigid() / PressureRelease() / Impedance(...), optional
+        With impedance walls the damped modes (``damping="exact"``) are
+        judged by their estimated *frequency* errors; their decay-rate errors
+        are estimated and reported (``errors.decay_rate_errors``) but not
+        part of the target.  The near-0 Hz damped mode of a room without
+        pressure-release surfaces has no relative frequency error (NaN) and
+        does not take part.
     tol : float
         Target relative frequency error, e.g. 1e-3.
     fmax : float
@@ -491,6 +735,10 @@ def solve_to_tolerance(mesh, walls=None, *, tol: float, fmax: float, order: int 
         Factorisation backend for :func:`solve_modes`.
     max_steps : int
         Largest number of solves.
+    indicators : bool
+        Also compute the (n_cells, n_modes) element-wise indicators of each
+        step's estimate (``errors.cell_indicators``; default False: not needed
+        to judge the target).
 
     Returns
     -------
@@ -556,10 +804,11 @@ def solve_to_tolerance(mesh, walls=None, *, tol: float, fmax: float, order: int 
             _warnings.simplefilter("ignore", ResolutionWarning)  # judged by the estimate
             modes = solve_modes(current, walls, order=order, fmax=fmax, air=air,
                                 backend=backend)
-        errs = estimate_errors(modes, indicators=False)
+        errs = estimate_errors(modes, indicators=bool(indicators))
         secs = time.perf_counter() - t0
         theta = _calibrate(prev, modes, errs) if prev is not None else np.ones(len(modes))
-        judged = errs.frequency_errors / theta
+        # NaN: the relative frequency error of a near-0 Hz damped mode is undefined
+        judged = np.nan_to_num(errs.frequency_errors, nan=0.0) / theta
         worst = float(judged.max()) if judged.size else 0.0
         prev = (modes, errs)
         step = dict(order=order, h_mean=float(current.h_mean), n_cells=int(current.n_cells),
@@ -677,18 +926,20 @@ def _check_time(result, steps, budget, tol, t_start, n):
 
 
 def _stop(result, steps, budget, tol, why):
-    from ._errors import ConvergenceError
+    from ._errors import BudgetExceededError
 
     if result is None:
-        raise ConvergenceError(
+        raise BudgetExceededError(
             f"solve_to_tolerance: {why}; nothing was solved. Raise max_dofs / max_seconds, "
-            "lower fmax or start from a coarser mesh.", partial=None)
+            "lower fmax or start from a coarser mesh.", partial=None, steps=(),
+            budget=MappingProxyType(budget))
     last = steps[-1]
-    raise ConvergenceError(
+    raise BudgetExceededError(
         f"solve_to_tolerance stopped before reaching tol={tol:g}: {why}. The last solve "
         f"({last['n_dofs']} DOFs, P{last['order']}) has a largest estimated error of "
         f"{last['max_error']:.3g}; raise max_dofs / max_seconds, loosen tol or lower fmax. "
         "The modes solved so far are in this error's .partial.",
         partial=AccurateModes(result.modes, result.errors, tol, False, tuple(steps),
                               MappingProxyType(budget), result.judged_errors,
-                              result.effectivities))
+                              result.effectivities),
+        steps=tuple(steps), budget=MappingProxyType(budget))

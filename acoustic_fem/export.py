@@ -69,6 +69,7 @@ def _split_complex(fields: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
 
 def write_fields_vtu(path, dofs: DofMap, point_data: Mapping[str, np.ndarray], *,
                      field_data: Mapping[str, np.ndarray] | None = None,
+                     cell_data: Mapping[str, np.ndarray] | None = None,
                      overwrite: bool = False) -> Path:
     """Write fields on the DOFs of ``dofs`` as a VTK unstructured grid.
 
@@ -82,12 +83,19 @@ def write_fields_vtu(path, dofs: DofMap, point_data: Mapping[str, np.ndarray], *
         Complex arrays are written as ``_real``, ``_imag`` and ``_abs``.
     field_data : mapping name -> (k,) array, optional
         Whole-dataset values (e.g. the mode frequencies).
+    cell_data : mapping name -> (n_cells,) real array, optional
+        One value per cell (e.g. the element-wise error indicator).
     """
     n = dofs.n_dofs
     pd = _split_complex(point_data)
     for name, v in pd.items():
         if v.shape != (n,):
             raise InputError(f"point data {name!r} has shape {v.shape}; expected ({n},).")
+    cd = {k: np.asarray(v, dtype=float) for k, v in (cell_data or {}).items()}
+    for name, v in cd.items():
+        if v.shape != (dofs.mesh.n_cells,):
+            raise InputError(f"cell data {name!r} has shape {v.shape}; expected "
+                             f"({dofs.mesh.n_cells},).")
     cells = dofs.cell_dofs.astype(np.int64)
     nc, npc = cells.shape
     vtk_type = _VTK_TYPE[(dofs.mesh.cell_type, dofs.order)]
@@ -110,7 +118,12 @@ def write_fields_vtu(path, dofs: DofMap, point_data: Mapping[str, np.ndarray], *
     parts.append("</Cells>\n<PointData>\n")
     for name, v in pd.items():
         parts.append(_array(name, v.astype(np.float64)))
-    parts.append("</PointData>\n</Piece>\n</UnstructuredGrid>\n</VTKFile>\n")
+    parts.append("</PointData>\n")
+    if cd:
+        parts.append("<CellData>\n")
+        parts += [_array(name, v) for name, v in cd.items()]
+        parts.append("</CellData>\n")
+    parts.append("</Piece>\n</UnstructuredGrid>\n</VTKFile>\n")
     p = Path(path)
     with atomic_path(p, overwrite=overwrite) as tmp:
         tmp.write_text("".join(parts), encoding="ascii")
@@ -122,7 +135,12 @@ def write_vtk(path, modes, *, overwrite: bool = False) -> Path:
 
     Each mode is a real point-data array named by :func:`mode_array_name`
     (index and frequency); the frequencies (Hz) are also stored as the
-    field-data array ``frequencies_hz`` (and ``decay_rates_per_s``).
+    field-data array ``frequencies_hz`` (and ``decay_rates_per_s``).  Modes
+    with an error estimate (``solve_modes(estimate=True)``) also carry
+    ``estimated_relative_errors`` and ``corrected_frequencies_hz`` as field
+    data and, per mode, the element-wise indicator as a real cell-data array
+    ``error_mode_NNN_F.FFFHz`` (the share of that mode's estimated relative
+    error in each cell).
 
     Parameters
     ----------
@@ -138,7 +156,17 @@ def write_vtk(path, modes, *, overwrite: bool = False) -> Path:
     shapes = modes.shapes
     pd = {mode_array_name(i, f): shapes[:, i] for i, f in enumerate(modes.frequencies)}
     fd = {"frequencies_hz": modes.frequencies, "decay_rates_per_s": modes.decay_rates}
-    return write_fields_vtu(p, modes.dofs, pd, field_data=fd, overwrite=overwrite)
+    cd = None
+    errors = getattr(modes, "errors", None)
+    if errors is not None:
+        fd["estimated_relative_errors"] = errors.frequency_errors
+        fd["corrected_frequencies_hz"] = errors.corrected_frequencies
+        fd["estimated_decay_rate_errors"] = errors.decay_rate_errors
+        fd["corrected_decay_rates_per_s"] = errors.corrected_decay_rates
+        if errors.cell_indicators is not None:
+            cd = errors.cell_data(modes.frequencies)
+    return write_fields_vtu(p, modes.dofs, pd, field_data=fd, cell_data=cd,
+                            overwrite=overwrite)
 
 
 def write_modes_csv(path, modes, *, overwrite: bool = False) -> Path:

@@ -7,15 +7,15 @@ import math
 import numbers
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from types import MappingProxyType
 from typing import Mapping
 
 import numpy as np
 
 from . import _damped
-from ._eigen import solve_generalized
-from ._errors import ConvergenceError, InputError
+from ._eigen import large_model_solver, solve_generalized
+from ._errors import BudgetExceededError, ConvergenceError, InputError
 from .air import Air
 from .assembly import Assembly, assemble, boundary_mass, facet_measures
 from .dofs import DofMap
@@ -23,8 +23,8 @@ from .impedance import Impedance
 from .mesh import Mesh
 from .walls import Wall, resolve_walls
 
-__all__ = ["Modes", "solve_modes", "DampingMethod", "ResolutionWarning",
-           "MIN_ELEMENTS_PER_WAVELENGTH"]
+__all__ = ["Modes", "solve_modes", "DampingMethod", "ResolutionWarning", "EstimateWarning",
+           "MIN_ELEMENTS_PER_WAVELENGTH", "TOL_MAX_DOFS", "TOL_MAX_SECONDS"]
 
 #: Elements (mean edge lengths) per wavelength below which the frequency error
 #: is likely to exceed about 1 %: from the 1D dispersion of consistent-mass
@@ -36,6 +36,19 @@ MIN_ELEMENTS_PER_WAVELENGTH = {1: 12.0, 2: 3.5}
 
 class ResolutionWarning(UserWarning):
     """The mesh is too coarse for the highest frequency asked for."""
+
+
+class EstimateWarning(UserWarning):
+    """An error estimate was asked for modes the estimator does not handle (left NaN):
+    damped modes from ``damping="perturbation"``."""
+
+
+#: Default DOF budget of ``solve_modes(..., tol=...)``; the same figure as
+#: :data:`acoustic_fem.estimate.DEFAULT_MAX_DOFS` (about 6 GB peak for P2),
+#: repeated here so that this module need not import the estimator.
+TOL_MAX_DOFS = 500_000
+#: Default time budget of ``solve_modes(..., tol=...)`` in seconds (one hour).
+TOL_MAX_SECONDS = 3600.0
 
 
 class DampingMethod(str, enum.Enum):
@@ -95,7 +108,20 @@ class Modes:
     info : mapping
         What the solver did: backend, shift windows, timings; with absorbing
         walls also the damping method, the shift height τ, the reference
-        frequency and the refinement of frequency-dependent walls.
+        frequency and the refinement of frequency-dependent walls; after
+        ``solve_modes(..., tol=...)`` also ``accuracy_target`` (the budget
+        stated up front, every step taken, whether the target was met).
+    errors : ModeErrors or None
+        The a-posteriori error estimate (:func:`acoustic_fem.estimate_errors`),
+        attached by ``solve_modes(..., estimate=True)`` or ``tol=...``; None
+        when no estimate was asked for.  See :attr:`frequency_errors`.
+
+    Error-estimate convention: :attr:`frequency_errors`,
+    :attr:`corrected_frequencies`, :attr:`decay_rate_errors`,
+    :attr:`corrected_decay_rates` and :attr:`cell_indicators` are **None**
+    when no estimate was asked for, and **NaN** where one was asked for but
+    is not available (modes from ``damping="perturbation"``; the relative
+    frequency error of the near-0 Hz damped mode); never a made-up number.
     """
 
     frequencies: np.ndarray
@@ -107,9 +133,13 @@ class Modes:
     decay_rates: np.ndarray = None  # type: ignore[assignment]
     info: Mapping = field(default_factory=dict)
     wavenumbers: np.ndarray = None  # type: ignore[assignment]
+    errors: object = None
 
     def __post_init__(self) -> None:
         n = len(self.frequencies)
+        if self.errors is not None and len(self.errors.frequency_errors) != n:
+            raise InputError(f"errors estimate {len(self.errors.frequency_errors)} modes but "
+                             f"there are {n}; estimate these modes.")
         if self.decay_rates is None:
             object.__setattr__(self, "decay_rates", np.zeros(n))
         if self.wavenumbers is None:
@@ -152,6 +182,52 @@ class Modes:
         with np.errstate(divide="ignore", invalid="ignore"):
             return np.where(self.decay_rates > 0, w / (2.0 * self.decay_rates), np.inf)
 
+    @property
+    def estimated(self) -> bool:
+        """True if an error estimate was asked for (it may be NaN: see the class notes)."""
+        return self.errors is not None
+
+    @property
+    def frequency_errors(self) -> np.ndarray | None:
+        """(n_modes,) estimated relative frequency error (f_h − f)/f, or None.
+
+        Hierarchical P(p)→P(p+1) enrichment (Bank & Smith 1993,
+        :mod:`acoustic_fem.estimate`).  None: not estimated; NaN: asked for
+        but not available (damped modes).
+        """
+        return None if self.errors is None else self.errors.frequency_errors
+
+    @property
+    def corrected_frequencies(self) -> np.ndarray | None:
+        """(n_modes,) corrected (enriched-space) frequencies in Hz, or None / NaN as above.
+
+        Labelled *corrected*: the Rayleigh–Ritz value in P(p+1), usually far
+        more accurate than :attr:`frequencies`, but not the solved value.
+        """
+        return None if self.errors is None else self.errors.corrected_frequencies
+
+    @property
+    def decay_rate_errors(self) -> np.ndarray | None:
+        """(n_modes,) estimated relative decay-rate error |δ_h − δ|/δ, or None / NaN as above.
+
+        0 for undamped modes (their decay rate 0 is exact).
+        """
+        return None if self.errors is None else self.errors.decay_rate_errors
+
+    @property
+    def corrected_decay_rates(self) -> np.ndarray | None:
+        """(n_modes,) corrected decay rates c Im k_c in 1/s, or None / NaN as above."""
+        return None if self.errors is None else self.errors.corrected_decay_rates
+
+    @property
+    def cell_indicators(self) -> np.ndarray | None:
+        """(n_cells, n_modes) element-wise share of each mode's estimated error, or None.
+
+        None when not estimated, when estimated without indicators, or for
+        damped modes; each column sums to :attr:`frequency_errors`.
+        """
+        return None if self.errors is None else self.errors.cell_indicators
+
     def __len__(self) -> int:
         return len(self.frequencies)
 
@@ -170,14 +246,23 @@ class Modes:
             )
 
     def table(self) -> list[dict]:
-        """One dict per mode: index, frequency_hz, decay_rate_per_s, t60_s, q."""
-        return [
+        """One dict per mode: index, frequency_hz, decay_rate_per_s, t60_s, q.
+
+        When an error estimate is attached, also ``estimated_relative_error``,
+        ``corrected_frequency_hz``, ``estimated_decay_rate_error`` and
+        ``corrected_decay_rate_per_s`` (NaN where not available).
+        """
+        rows = [
             dict(index=i, frequency_hz=float(f), decay_rate_per_s=float(d), t60_s=float(t),
                  q=float(q))
             for i, (f, d, t, q) in enumerate(
                 zip(self.frequencies, self.decay_rates, self.t60, self.quality_factors)
             )
         ]
+        if self.errors is not None:
+            for i, r in enumerate(rows):
+                r.update({k: float(v[i]) for k, v in self.errors.columns().items()})
+        return rows
 
 
 def _check_positive_int(name, value):
@@ -254,6 +339,10 @@ def solve_modes(
     backend: str = "auto",
     assembly: Assembly | None = None,
     damping: str | DampingMethod = DampingMethod.EXACT,
+    estimate: bool = False,
+    tol: float | None = None,
+    max_dofs: int | None = TOL_MAX_DOFS,
+    max_seconds: float | None = TOL_MAX_SECONDS,
 ) -> Modes:
     """Eigenfrequencies and mode shapes of the air in an enclosure.
 
@@ -278,8 +367,14 @@ def solve_modes(
         lowest ``count`` modes below fmax.
     air : Air, optional
         Default Air() (20 °C).
-    backend : {"auto", "cholmod", "superlu"}
-        Sparse factorisation used for the shifts.
+    backend : {"auto", "cholmod", "superlu", "petsc", "amg"}, MpiSolver or AmgSolver
+        Sparse factorisation used for the shifts; or an eigensolver path for
+        large models: "petsc" / :class:`~acoustic_fem.MpiSolver` (SLEPc
+        Krylov–Schur, shift-invert, MUMPS, under MPI; optional PETSc/SLEPc
+        install), "amg" / :class:`~acoustic_fem.AmgSolver` (LOBPCG with an
+        algebraic-multigrid preconditioner, no factorisation; optional
+        pyamg).  These two serve rigid and pressure-release walls, and
+        absorbing walls with damping="perturbation".
     assembly : Assembly, optional
         Matrices from :func:`assemble` of the same mesh and order, to reuse.
     damping : DampingMethod or {"exact", "perturbation"}
@@ -290,13 +385,45 @@ def solve_modes(
         wall taken at the rigid frequency).  A frequency-dependent β is never
         evaluated below 1 % of c/(2 × the mesh's largest extent), which sets
         the uniform mode's admittance.
+    estimate : bool
+        Attach an a-posteriori error estimate of every mode (hierarchical
+        P(p)→P(p+1) enrichment, Bank & Smith, SIAM J. Numer. Anal. 30(4),
+        1993; :func:`acoustic_fem.estimate_errors`): ``Modes.frequency_errors``
+        (n_modes,), ``corrected_frequencies`` (n_modes,) and
+        ``cell_indicators`` (n_cells, n_modes); for damped modes
+        (``damping="exact"``) also ``decay_rate_errors`` and
+        ``corrected_decay_rates`` (n_modes,), from the same enrichment applied
+        to the complex eigenpair (:mod:`acoustic_fem.estimate`).  Costs about
+        0.4x the solve (bench/bench_estimate.py).  Modes from
+        ``damping="perturbation"`` are not estimated: an
+        :class:`EstimateWarning` is issued and the arrays are NaN.
+    tol : float, optional
+        Accuracy target: refine until every mode up to ``fmax`` has an
+        estimated relative frequency error <= tol (e.g. 1e-3), by
+        :func:`acoustic_fem.solve_to_tolerance` (P1 -> P2, then uniform
+        refinement of a Mesh, or remeshing when ``mesh`` is a builder
+        ``h -> Mesh``).  Needs ``fmax``; not with ``count`` or ``assembly``.
+        With impedance walls the damped modes (exact damping) are judged by
+        their frequency errors; decay-rate errors are estimated and reported,
+        not targeted.  The returned modes (of the last mesh, ``Modes.mesh``)
+        carry the estimate and
+        ``info["accuracy_target"]`` (budget, steps, met); add
+        ``estimate=True`` for the element-wise indicators too.
+    max_dofs, max_seconds : int or None, float or None
+        The budget of ``tol=``, fixed before the first solve (defaults
+        :data:`TOL_MAX_DOFS` DOFs, :data:`TOL_MAX_SECONDS` s; None: no limit).
+        A step predicted to exceed it is not started: a
+        :class:`~acoustic_fem.BudgetExceededError` is raised whose
+        ``partial`` holds the modes of the last step with their estimates.
+        Ignored without ``tol``.
 
     Returns
     -------
     Modes
         ``frequencies`` (n_modes,), ``shapes`` (n_dofs, n_modes),
         ``points`` (n_dofs, dim); complex ``shapes``, ``eigenvalues`` and
-        ``wavenumbers`` and nonzero ``decay_rates`` with absorbing walls.
+        ``wavenumbers`` and nonzero ``decay_rates`` with absorbing walls;
+        ``frequency_errors`` etc. with ``estimate=True`` or ``tol``.
 
     Raises
     ------
@@ -304,7 +431,91 @@ def solve_modes(
         A bad argument (the message names it).
     ConvergenceError
         Some modes did not converge; ``partial`` holds those that did.
+    BudgetExceededError
+        With ``tol``: the next refinement would exceed the budget.
     """
+    if not isinstance(estimate, bool):
+        raise InputError(f"estimate={estimate!r} must be True or False.")
+    if tol is not None:
+        if _check_damping(damping) is DampingMethod.PERTURBATION:
+            raise InputError("tol= needs damping='exact': modes from damping='perturbation' "
+                             "are first-order approximations and have no error estimate.")
+        return _solve_to_target(mesh, walls, order=order, count=count, fmax=fmax, air=air,
+                                backend=backend, assembly=assembly, estimate=estimate,
+                                tol=tol, max_dofs=max_dofs, max_seconds=max_seconds)
+    modes = _solve_once(mesh, walls, order=order, count=count, fmax=fmax, air=air,
+                        backend=backend, assembly=assembly, damping=damping)
+    if estimate:
+        modes = _attach_estimate(modes)
+    return modes
+
+
+def _attach_estimate(modes: Modes) -> Modes:
+    """``modes`` with the error estimate attached (NaN for damped modes, with a warning)."""
+    from .estimate import ModeErrors, estimate_errors
+
+    n = len(modes)
+    damped = np.iscomplexobj(modes.shapes) or np.any(modes.decay_rates != 0)
+    if damped and dict(modes.info).get("damping") == DampingMethod.PERTURBATION.value:
+        warnings.warn(
+            "error estimates are not available for damped modes from damping='perturbation' "
+            "(first-order approximations, not discrete eigenpairs): the estimated errors are "
+            "NaN. Solve with damping='exact' for an estimate.", EstimateWarning, stacklevel=3)
+        nan = np.full(n, np.nan)
+        errs = ModeErrors(nan, nan.copy(), nan.copy(), None,
+                          info=dict(not_estimated="damping='perturbation' modes"),
+                          decay_rate_errors=nan.copy(), corrected_decay_rates=nan.copy())
+    else:
+        errs = estimate_errors(modes, indicators=True)
+    info = dict(modes.info, estimate_seconds=float(errs.info.get("seconds", 0.0)))
+    return replace(modes, errors=errs, info=info)
+
+
+def _solve_to_target(mesh, walls, *, order, count, fmax, air, backend, assembly, estimate,
+                     tol, max_dofs, max_seconds) -> Modes:
+    """The ``tol=`` branch of :func:`solve_modes` (through ``solve_to_tolerance``)."""
+    from .estimate import solve_to_tolerance
+
+    if count is not None:
+        raise InputError(f"count={count!r} cannot be combined with tol=: the accuracy target "
+                         "applies to every mode up to fmax; give fmax= and drop count=.")
+    if fmax is None:
+        raise InputError(f"tol={tol!r} needs fmax= (Hz): the target applies to every mode up "
+                         "to fmax.")
+    fmax = _check_positive_float("fmax", fmax, "Hz")
+    if assembly is not None:
+        raise InputError("assembly= cannot be reused with tol=: the mesh is refined; drop "
+                         "assembly=.")
+    if not isinstance(mesh, Mesh) and not callable(mesh):
+        raise InputError(f"with tol=, mesh must be a Mesh or a mesh builder h -> Mesh, got "
+                         f"{type(mesh).__name__}.")
+    if isinstance(mesh, Mesh):
+        resolve_walls(mesh, walls)  # names checked before any solve
+    try:
+        res = solve_to_tolerance(mesh, walls, tol=tol, fmax=fmax, order=order, air=air,
+                                 max_dofs=max_dofs, max_seconds=max_seconds, backend=backend,
+                                 indicators=estimate)
+    except BudgetExceededError as exc:
+        part = None if exc.partial is None else _with_target(exc.partial)
+        raise BudgetExceededError(str(exc), partial=part, steps=exc.steps,
+                                  budget=exc.budget) from None
+    return _with_target(res)
+
+
+def _with_target(res) -> Modes:
+    """The Modes of an AccurateModes, with its estimate and what the target loop did."""
+    target = dict(tol=float(res.tol), met=bool(res.met), budget=dict(res.budget),
+                  steps=[dict(s) for s in res.steps],
+                  judged_errors=np.asarray(res.judged_errors, dtype=float).tolist(),
+                  effectivities=np.asarray(res.effectivities, dtype=float).tolist(),
+                  method=res.errors.method)
+    info = dict(res.modes.info, accuracy_target=target,
+                estimate_seconds=float(res.errors.info.get("seconds", 0.0)))
+    return replace(res.modes, errors=res.errors, info=info)
+
+
+def _solve_once(mesh, walls, *, order, count, fmax, air, backend, assembly, damping) -> Modes:
+    """One solve on one mesh: the body of :func:`solve_modes` without estimate / tol."""
     t0 = time.perf_counter()
     if not isinstance(mesh, Mesh):
         raise InputError(
@@ -333,7 +544,7 @@ def solve_modes(
                 f"wavelength (mean edge {mesh.h_mean:.3g} m, wavelength {air.c / fmax:.3g} m); "
                 f"about {need:g} are needed for 1 % accuracy — refine the "
                 f"mesh to a mean edge of {air.c / fmax / need:.3g} m or lower fmax.",
-                ResolutionWarning, stacklevel=2,
+                ResolutionWarning, stacklevel=3,
             )
     full_walls = resolve_walls(mesh, walls)
 
@@ -369,6 +580,11 @@ def solve_modes(
 
     absorbing = [n for n, w in full_walls.items() if isinstance(w, Impedance)
                  and not (not w.frequency_dependent and w.constant_admittance == 0)]
+    if absorbing and damping is DampingMethod.EXACT and large_model_solver(backend) is not None:
+        raise InputError(
+            f"backend={backend!r} solves undamped eigenproblems only, but the walls "
+            f"{absorbing} absorb: pass damping='perturbation' (rigid modes with first-order "
+            "decay rates) or use backend='auto'.")
     if absorbing:
         return _solve_damped(
             mesh, full_walls, absorbing, dofs, free, K, M, air, count=count, fmax=fmax,
@@ -474,7 +690,7 @@ def _solve_damped(mesh, full_walls, absorbing, dofs, free, K, M, air, *, count, 
                 f"strip 0 <= Im k <= 2τ = {2 * tau:.3g} 1/m in which the damped solver "
                 "guarantees to find every mode; strongly damped modes may be missing. "
                 "Check with damping='perturbation' or fewer absorbing surfaces.",
-                stacklevel=3,
+                stacklevel=4,
             )
 
     # order by frequency and select

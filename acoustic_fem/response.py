@@ -108,7 +108,7 @@ from .walls import PressureRelease, Rigid, Wall, resolve_walls
 
 __all__ = [
     "P_REF", "Method", "SmoothingWindow", "PointSource", "ReceiverPlane", "Response",
-    "receiver_line", "receiver_plane", "solve_response",
+    "PressureField", "receiver_line", "receiver_plane", "solve_response",
 ]
 
 #: Reference sound pressure for SPL, 20 µPa (IEC 61672 / ISO 1683).
@@ -393,6 +393,9 @@ class Response:
         What was done: method, sizes, timings, basis size, check results.
     layout : ReceiverPlane or None
         The plane the receivers came from (enables :meth:`spl_map`).
+    field : PressureField or None
+        The pressure on every DOF at the ``field_frequencies`` asked of
+        :func:`solve_response` (None when none were asked for).
     """
 
     frequencies: np.ndarray
@@ -403,6 +406,7 @@ class Response:
     power_absorbed: np.ndarray
     info: Mapping = field(default_factory=dict)
     layout: ReceiverPlane | None = None
+    field: "PressureField | None" = None
 
     def __post_init__(self) -> None:
         for name in ("frequencies", "receivers", "residuals", "power_in", "power_absorbed"):
@@ -544,6 +548,99 @@ class Response:
         f = self.frequencies
         return (f"Response({len(f)} frequencies {f.min():.4g}–{f.max():.4g} Hz, "
                 f"{len(self.receivers)} receivers, method {self.info.get('method')})")
+
+
+@dataclass(frozen=True, eq=False)
+class PressureField:
+    """Complex sound pressure on every DOF at a few frequencies.
+
+    Attributes
+    ----------
+    frequencies : (n_k,) float array, Hz
+    pressure : (n_k, n_dofs) complex array, Pa
+        Amplitudes p̂ at the DOFs of ``dofs`` (e^{+iωt}); 0 on
+        pressure-release surfaces.
+    dofs : DofMap
+        The P1/P2 DOFs; their points are ``dofs.points`` (n_dofs, 3).
+    """
+
+    frequencies: np.ndarray
+    pressure: np.ndarray
+    dofs: object
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "frequencies", _ro(np.array(self.frequencies, dtype=float)))
+        P = _ro(np.array(self.pressure, dtype=complex))
+        if P.shape != (self.frequencies.size, self.dofs.n_dofs):
+            raise InputError(f"pressure has shape {P.shape}; expected "
+                             f"({self.frequencies.size}, {self.dofs.n_dofs}).")
+        object.__setattr__(self, "pressure", P)
+
+    @property
+    def magnitude(self) -> np.ndarray:
+        """(n_k, n_dofs) |p̂| in Pa."""
+        return np.abs(self.pressure)
+
+    @property
+    def spl(self) -> np.ndarray:
+        """(n_k, n_dofs) SPL in dB re 20 µPa of |p̂|/√2; NaN where p̂ = 0 exactly
+        (pressure-release DOFs), which has no level."""
+        a = np.abs(self.pressure)
+        with np.errstate(divide="ignore"):
+            L = 20.0 * np.log10(a / (math.sqrt(2.0) * P_REF))
+        return np.where(a > 0, L, np.nan)
+
+    def sample(self, points) -> np.ndarray:
+        """Pressure at points by the element interpolation.
+
+        Parameters
+        ----------
+        points : (n, 3) array of points in m ((n, 2) / (n, 1) for 2D / 1D)
+
+        Returns
+        -------
+        (n_k, n) complex array, Pa; InputError for points outside the enclosure.
+        """
+        pts = _points3("points", points)
+        E = _evaluation(self.dofs.mesh, self.dofs, pts, "point")
+        return np.asarray(E @ self.pressure.T).T
+
+    def __repr__(self) -> str:
+        return (f"PressureField({self.frequencies.size} frequencies, "
+                f"{self.dofs.n_dofs} DOFs)")
+
+
+def _field_indices(value, freqs: np.ndarray) -> np.ndarray:
+    """Indices into ``freqs`` of the field frequencies asked for (sorted, unique)."""
+    if value is None:
+        return np.zeros(0, dtype=np.int64)
+    try:
+        want = np.atleast_1d(np.asarray(value, dtype=float))
+    except (TypeError, ValueError):
+        raise InputError(f"field_frequencies must be a list of frequencies in Hz, got "
+                         f"{value!r}.") from None
+    if want.ndim != 1:
+        raise InputError(f"field_frequencies has shape {want.shape}; give a 1D list of Hz.")
+    out = []
+    for w in want:
+        j = int(np.argmin(np.abs(freqs - w))) if math.isfinite(w) else 0
+        if not (math.isfinite(w) and abs(freqs[j] - w) <= 1e-9 * max(abs(w), 1.0)):
+            raise InputError(
+                f"field_frequencies: {w:g} Hz is not one of the frequencies solved; the nearest "
+                f"is {freqs[j]:g} Hz — give frequencies taken from frequencies=."
+            )
+        out.append(j)
+    return np.unique(np.array(out, dtype=np.int64))
+
+
+def _full_field(pb: "_Problem", fields: dict, idx: np.ndarray):
+    """PressureField on every DOF from free-DOF vectors {frequency index: (n_free,)}."""
+    if idx.size == 0:
+        return None
+    P = np.zeros((idx.size, pb.assembly.dofs.n_dofs), complex)
+    for j, i in enumerate(idx):
+        P[j, pb.free] = fields[int(i)]
+    return PressureField(pb.f[idx], P, pb.assembly.dofs)
 
 
 # ------------------------------------------------------------ the problem
@@ -769,8 +866,12 @@ def _nested_dissection(S) -> np.ndarray | None:
         return None
 
 
-def _solve_direct(pb: _Problem, idx: np.ndarray):
-    """Direct solves at frequency indices idx: pressure at receivers, sources, walls."""
+def _solve_direct(pb: _Problem, idx: np.ndarray, fields: dict | None = None):
+    """Direct solves at frequency indices idx: pressure at receivers, sources, walls.
+
+    ``fields``: a dict whose keys are frequency indices; the free-DOF
+    solution (n_free,) at each of them is stored as its value.
+    """
     pat = _Pattern(pb.K, pb.M, pb.B)
     m = len(idx)
     p_rec = np.empty((m, pb.E_rec.shape[0]), complex)
@@ -781,6 +882,8 @@ def _solve_direct(pb: _Problem, idx: np.ndarray):
         A = pat.matrix(pb.k[i], pb.beta[:, i])
         b = pb.rhs(np.array([i]))[:, 0]
         p = pat.solve(A, b, pb.f[i])
+        if fields is not None and int(i) in fields:
+            fields[int(i)] = p
         res[j] = pb.residual_norms(p[:, None], np.array([i]))[0]
         p_rec[j] = pb.E_rec @ p
         p_src[j] = pb.E_src @ p
@@ -941,7 +1044,8 @@ _N_PICK = 8
 _N_SAMPLE = 48
 
 
-def _solve_modal(pb: _Problem, mesh, order, modes, modal_factor, refine, tol, backend):
+def _solve_modal(pb: _Problem, mesh, order, modes, modal_factor, refine, tol, backend,
+                 fields: dict | None = None):
     from ._linalg import factorize
     from .modes import Modes, ResolutionWarning, solve_modes
 
@@ -1028,6 +1132,8 @@ def _solve_modal(pb: _Problem, mesh, order, modes, modal_factor, refine, tol, ba
             break
     p_rec = (red.Rr @ a).T
     p_src = (red.Sr @ a).T
+    for i in (fields or {}):  # a covers the whole sweep here: p = V a
+        fields[i] = red.V @ a[:, i]
     wall_sq = np.array([np.einsum("im,ij,jm->m", a.conj(), Br, a).real for Br in red.Br]
                        ).reshape(len(red.Br), a.shape[1])
     info.update(method="modal", n_basis=int(red.m), n_static_corrections=int(n_static),
@@ -1098,6 +1204,7 @@ def solve_response(
     check: int = 0,
     assembly: Assembly | None = None,
     backend: str = "auto",
+    field_frequencies=None,
 ) -> Response:
     """Complex sound pressure at receivers for point sources over frequencies.
 
@@ -1141,12 +1248,17 @@ def solve_response(
         K and M of this mesh and order, to reuse.
     backend : {"auto", "cholmod", "superlu"}
         Factorisation of the positive definite K - σM (modal method).
+    field_frequencies : (n_k,) array of Hz, optional
+        Frequencies, each one of ``frequencies``, at which the pressure on
+        every DOF is kept as well (``Response.field``), e.g. for VTK files of
+        the whole field; a few only: each costs n_dofs complex values.
 
     Returns
     -------
     Response
         ``pressure`` (n_f, n_r) complex Pa, ``spl`` (n_f, n_r) dB,
-        ``residuals`` (n_f,), ``power_in`` / ``power_absorbed`` (n_f,).
+        ``residuals`` (n_f,), ``power_in`` / ``power_absorbed`` (n_f,),
+        ``field`` (a :class:`PressureField`, (n_k, n_dofs)) or None.
     """
     t_start = time.perf_counter()
     if not isinstance(mesh, Mesh):
@@ -1161,6 +1273,7 @@ def solve_response(
         raise InputError(f"air must be an acoustic_fem Air, got {air!r}.")
     meth = _enum(Method, method, "method")
     freqs = _frequencies(frequencies)
+    field_idx = _field_indices(field_frequencies, freqs)
     srcs = _sources(sources)
     layout = receivers if isinstance(receivers, ReceiverPlane) else None
     rec = _points3("receivers", receivers.points if layout is not None else receivers)
@@ -1191,12 +1304,13 @@ def solve_response(
                 locate_seconds=pb.t_locate)
     all_idx = np.arange(freqs.size)
     t0 = time.perf_counter()
+    fields = {int(i): None for i in field_idx}
     if meth is Method.DIRECT:
-        p_rec, p_src, wall_sq, res, solver = _solve_direct(pb, all_idx)
+        p_rec, p_src, wall_sq, res, solver = _solve_direct(pb, all_idx, fields)
         info.update(method="direct", solver=solver)
     else:
         p_rec, p_src, wall_sq, res, minfo = _solve_modal(pb, mesh, order, modes, modal_factor,
-                                                         refine, tol, backend)
+                                                         refine, tol, backend, fields)
         info.update(minfo)
         if check:
             ci = np.unique(np.round(np.linspace(0, freqs.size - 1, min(check, freqs.size)))
@@ -1213,7 +1327,8 @@ def solve_response(
     w_in, w_abs = pb.energy(p_src, wall_sq, all_idx)
     info["max_residual"] = float(res.max())
     info["total_seconds"] = time.perf_counter() - t_start
-    return Response(freqs, rec, p_rec, res, w_in, w_abs, info=info, layout=layout)
+    return Response(freqs, rec, p_rec, res, w_in, w_abs, info=info, layout=layout,
+                    field=_full_field(pb, fields, field_idx))
 
 
 def _warn_resolution(mesh, order, air, f_top):

@@ -8,10 +8,18 @@ leaves no partial folder, and an existing folder is replaced only when asked.
 Layout (``OUT/``)::
 
     <scenario>.toml            the scenario file, copied verbatim
-    modes.csv, modes.json      the modes table (same content; JSON uses null for ∞)
+    modes.csv, modes.json      the modes table (same content; JSON uses null for ∞);
+                               with an error estimate also estimated_relative_error
+                               and corrected_frequency_hz (:data:`ESTIMATE_COLUMNS`)
     modes.pvd, vtk/mode_NNN.vtu
                                one VTK file per mode, collected so that a viewer
-                               steps through the modes (the "time" is the frequency)
+                               steps through the modes (the "time" is the frequency);
+                               with an estimate, cell data estimated_error_indicator
+    response.pvd, vtk/response_NNN.vtu
+                               the forced-response field on the whole mesh at the
+                               SPL-map frequencies, one file each (real arrays:
+                               pressure_real_pa, pressure_imag_pa,
+                               pressure_magnitude_pa, spl_db), collected likewise
     modes_at_receivers.csv     |mode shape| at each receiver, relative to its maximum
     spl_at_receivers.csv       SPL (dB re 20 µPa) at each receiver over the sweep
     seat_statistics.csv        mean / min / max / spread / standard deviation over seats
@@ -46,10 +54,13 @@ from ._errors import InputError
 
 __all__ = [
     "MODE_COLUMNS",
+    "ESTIMATE_COLUMNS",
     "write_results",
     "modes_table",
     "box_mode_types",
     "write_pvd",
+    "write_field_vtus",
+    "RESPONSE_ARRAYS",
     "render_report",
     "export_results",
     "EXPORT_FORMATS",
@@ -67,6 +78,24 @@ MODE_COLUMNS = {
     "elements_per_wavelength": "wavelength / mean edge length at this frequency",
     "estimated_error_percent": "discretisation error estimate from the 1D dispersion of the "
                                "elements ((kh)^4/1440 for P2, (kh)^2/24 for P1)",
+}
+
+#: Columns added to the modes table when the modes carry an a-posteriori error
+#: estimate (``solve_modes(estimate=True)`` or ``tol=``; scenario ``[solver]
+#: estimate_errors`` / ``[frequencies] error_target``); empty (CSV) or null
+#: (JSON) where the estimate is not available (damped modes).
+ESTIMATE_COLUMNS = {
+    "estimated_relative_error": "a-posteriori estimate of this mode's relative frequency error "
+                                "(f_h - f)/f, hierarchical P(p)->P(p+1) enrichment (Bank & "
+                                "Smith, SIAM J. Numer. Anal. 30(4), 1993)",
+    "corrected_frequency_hz": "corrected eigenfrequency (Hz): the enriched-space P(p+1) "
+                              "Rayleigh-Ritz value, usually more accurate than frequency_hz; "
+                              "an estimate, not the solved value",
+    "estimated_decay_rate_error": "a-posteriori estimate of the relative decay-rate error "
+                                  "|d_h - d|/d (damped modes; 0 without absorption, where the "
+                                  "decay rate 0 is exact)",
+    "corrected_decay_rate_per_s": "corrected decay rate (1/s), the enriched-space value beside "
+                                  "decay_rate_per_s; an estimate, not the solved value",
 }
 
 
@@ -147,7 +176,15 @@ def modes_table(sol) -> list[dict]:
             "elements_per_wavelength": float(epw[i]),
             "estimated_error_percent": float(err[i]),
         })
+    if getattr(m, "errors", None) is not None:  # the a-posteriori estimate, when attached
+        cols = m.errors.columns()  # name -> (n_modes,), the ESTIMATE_COLUMNS
+        for i, r in enumerate(rows):
+            r.update({k: float(cols[k][i]) for k in ESTIMATE_COLUMNS})
     return rows
+
+
+def _has_estimate(rows) -> bool:
+    return bool(rows) and "estimated_relative_error" in rows[0]
 
 
 def _fmt(x: float, digits: int = 6) -> str:
@@ -163,12 +200,22 @@ def _fmt(x: float, digits: int = 6) -> str:
 def _write_modes_csv(path: Path, rows: list[dict]) -> None:
     with open(path, "w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh, lineterminator="\n")
-        w.writerow(list(MODE_COLUMNS))
+        est = _has_estimate(rows)
+        w.writerow(list(MODE_COLUMNS) + (list(ESTIMATE_COLUMNS) if est else []))
         for r in rows:
+            extra = ([_fmt_est(r["estimated_relative_error"], 4),
+                      _fmt_est(r["corrected_frequency_hz"], 9),
+                      _fmt_est(r["estimated_decay_rate_error"], 4),
+                      _fmt_est(r["corrected_decay_rate_per_s"], 9)] if est else [])
             w.writerow([_fmt(r["index"]), _fmt(r["frequency_hz"], 9), _fmt(r["decay_rate_per_s"]),
                         _fmt(r["t60_s"]), _fmt(r["q"]), r["mode_type"], r["box_indices"],
                         _fmt(r["elements_per_wavelength"], 4),
-                        _fmt(r["estimated_error_percent"], 3)])
+                        _fmt(r["estimated_error_percent"], 3)] + extra)
+
+
+def _fmt_est(x: float, digits: int) -> str:
+    """An estimate for the CSV: empty where not available (NaN), never a made-up number."""
+    return "" if math.isnan(x) else _fmt(x, digits)
 
 
 def _round(x: float, digits: int):
@@ -178,10 +225,14 @@ def _round(x: float, digits: int):
 
 
 def _write_modes_json(path: Path, rows: list[dict], sol) -> None:
+    est = _has_estimate(rows)
     out = {
         "title": sol.scenario.title,
-        "columns": MODE_COLUMNS,
-        "note": "null stands for infinity (no absorption).",
+        "columns": {**MODE_COLUMNS, **(ESTIMATE_COLUMNS if est else {})},
+        "note": "null stands for infinity (no absorption)" + (
+            "; in the estimate columns, null means not available (damping = "
+            "'perturbation', or the relative frequency error of a near-0 Hz damped mode)."
+            if est else "."),
         "element_order": sol.modes.order,
         "speed_of_sound_m_s": _round(sol.modes.air.c, 9),
         "modes": [{
@@ -194,8 +245,15 @@ def _write_modes_json(path: Path, rows: list[dict], sol) -> None:
             "box_indices": r["box_indices"] or None,
             "elements_per_wavelength": _round(r["elements_per_wavelength"], 4),
             "estimated_error_percent": _round(r["estimated_error_percent"], 3),
+            **({"estimated_relative_error": _round(r["estimated_relative_error"], 4),
+                "corrected_frequency_hz": _round(r["corrected_frequency_hz"], 9),
+                "estimated_decay_rate_error": _round(r["estimated_decay_rate_error"], 4),
+                "corrected_decay_rate_per_s": _round(r["corrected_decay_rate_per_s"], 9)}
+               if est else {}),
         } for r in rows],
     }
+    if est:
+        out["error_estimate_method"] = sol.modes.errors.method
     path.write_text(json.dumps(out, indent=1, ensure_ascii=False) + "\n", encoding="utf-8")
 
 
@@ -268,18 +326,72 @@ def _write_mode_vtus(folder: Path, sol, progress=None) -> list[str]:
     (folder / "vtk").mkdir()
     entries = []
     files = []
+    ind = getattr(m, "cell_indicators", None)  # (n_cells, n_modes) or None
     for i in range(len(m)):
         f = float(m.frequencies[i])
         rel = f"vtk/mode_{i:03d}.vtu"
+        fd = {"frequency_hz": [f], "mode_index": [float(i)],
+              "decay_rate_per_s": [float(m.decay_rates[i])]}
+        if getattr(m, "errors", None) is not None:
+            fd.update({k: [float(v[i])] for k, v in m.errors.columns().items()})
+        # the element-wise indicator: each cell's share of this mode's
+        # estimated relative frequency error (sums to estimated_relative_error)
+        cd = None if ind is None else {"estimated_error_indicator": ind[:, i]}
         write_fields_vtu(folder / rel, m.dofs, {"mode_shape": np.asarray(m.shapes)[:, i]},
-                         field_data={"frequency_hz": [f], "mode_index": [float(i)],
-                                     "decay_rate_per_s": [float(m.decay_rates[i])]})
+                         field_data=fd, cell_data=cd)
         entries.append((f, rel, f"mode {i}: {f:.2f} Hz"))
         files.append(rel)
         if progress:
             progress("writing", i + 1, len(m))
     write_pvd(folder / "modes.pvd", entries)
     return files
+
+
+#: Point arrays of a response VTK file (all real; units in the names).
+RESPONSE_ARRAYS = {
+    "pressure_real_pa": "real part of the complex pressure amplitude p̂ (Pa, e^{+iωt})",
+    "pressure_imag_pa": "imaginary part of p̂ (Pa)",
+    "pressure_magnitude_pa": "|p̂| (Pa, amplitude; the rms value is |p̂|/√2)",
+    "spl_db": "SPL of |p̂|/√2 re 20 µPa (dB; NaN where p̂ = 0, on pressure-release surfaces)",
+}
+
+
+def write_field_vtus(folder, field, *, prefix: str = "response") -> list[str]:
+    """Write a PressureField as one .vtu per frequency and a .pvd collection.
+
+    Files: ``<folder>/vtk/<prefix>_NNN.vtu`` (NNN counts the frequencies from
+    0) and ``<folder>/<prefix>.pvd`` whose timesteps are the frequencies in
+    Hz.  Each .vtu holds the real point arrays of :data:`RESPONSE_ARRAYS`
+    (never a complex array) and the field data ``frequency_hz``.  Each file
+    is written atomically; existing files are not overwritten.
+
+    Parameters
+    ----------
+    folder : str or Path (an existing folder)
+    field : PressureField (``pressure`` (n_k, n_dofs) complex)
+    prefix : str
+
+    Returns
+    -------
+    list of the relative paths written (the .vtu files, then the .pvd).
+    """
+    from .export import write_fields_vtu
+
+    folder = Path(folder)
+    (folder / "vtk").mkdir(exist_ok=True)
+    P = np.asarray(field.pressure)
+    spl = np.asarray(field.spl)
+    entries, files = [], []
+    for j, f in enumerate(np.asarray(field.frequencies, dtype=float)):
+        rel = f"vtk/{prefix}_{j:03d}.vtu"
+        write_fields_vtu(folder / rel, field.dofs, {
+            "pressure_real_pa": P[j].real, "pressure_imag_pa": P[j].imag,
+            "pressure_magnitude_pa": np.abs(P[j]), "spl_db": spl[j]},
+            field_data={"frequency_hz": [float(f)]})
+        entries.append((float(f), rel, f"response at {f:.2f} Hz"))
+        files.append(rel)
+    write_pvd(folder / f"{prefix}.pvd", entries)
+    return files + [f"{prefix}.pvd"]
 
 
 # ==========================================================================
@@ -390,6 +502,11 @@ def plot_mode_slices(sol, rows) -> tuple[bytes, str] | None:
         shapes) else shapes
     peak = np.max(np.abs(shapes), axis=0)
     vals = sample_field(m.dofs, shapes / peak[None, :], sol.plane.points)   # (n_m, n_sel)
+    # each panel is scaled to its own largest value on the plane, so that a
+    # mode weak at ear height still shows its pattern; that value, as a share
+    # of the mode's maximum in the room, is written in the panel
+    here = np.maximum(np.nanmax(np.abs(vals), axis=0), 1e-12)              # (n_sel,)
+    vals = vals / here[None, :]
     ncol = min(3, len(sel))
     nrow = int(math.ceil(len(sel) / ncol))
     ext = _extent(sol.plane)
@@ -403,6 +520,9 @@ def plot_mode_slices(sol, rows) -> tuple[bytes, str] | None:
         _plan_markers(ax, sc)
         ty = rows[i]["mode_type"]
         ax.set_title(f"mode {i}: {m.frequencies[i]:.1f} Hz" + (f" ({ty})" if ty else ""))
+        ax.text(0.02, 0.97, f"peak here {100 * here[j]:.0f} % of room max", transform=ax.transAxes,
+                ha="left", va="top", fontsize=8,
+                bbox={"boxstyle": "round,pad=0.2", "fc": "white", "ec": "0.6", "alpha": 0.85})
         ax.set_xlabel("x (m)")
         ax.set_ylabel("y (m)")
     for ax in list(axes.flat)[len(sel):]:
@@ -410,10 +530,12 @@ def plot_mode_slices(sol, rows) -> tuple[bytes, str] | None:
     fig.suptitle(f"Mode shapes at ear height z = {sol.plane.height:.2f} m")
     if im is not None:
         cb = fig.colorbar(im, ax=axes.ravel().tolist(), shrink=0.8)
-        cb.set_label("relative pressure (mode maximum = 1)")
+        cb.set_label("relative pressure (largest on the plane = ±1)")
     cap = (f"Pressure of the lowest {len(sel)} modes on a horizontal plane at "
-           f"{sol.plane.height:.2f} m, each scaled to its maximum in the room (red and blue are "
-           "opposite phase; white is a pressure node). Triangles: sources; circles: receivers.")
+           f"{sol.plane.height:.2f} m, each scaled to its largest value on that plane; the box in "
+           "each panel gives that value as a percentage of the mode's maximum anywhere in the "
+           "room (a low percentage: the mode is weak at this height). Red and blue are opposite "
+           "phase; white is a pressure node. Triangles: sources; circles: receivers.")
     return _png(fig), cap
 
 
@@ -471,19 +593,11 @@ def plot_seat_spread(sol) -> tuple[bytes, str]:
 
 def map_frequencies(sol) -> list[float]:
     """Frequencies of the SPL maps: outputs.map_frequencies_hz, else the sweep
-    frequencies nearest the three lowest nonzero modes in the sweep."""
-    sc = sol.scenario
-    f = sol.frequencies
-    want = list(sc.outputs.map_frequencies_hz)
-    if not want:
-        fm = [x for x in sol.modes.frequencies if sc.sweep.min_hz <= x <= sc.sweep.max_hz and x > 0]
-        want = fm[:3]
-    out = []
-    for w in want:
-        v = float(f[np.argmin(np.abs(f - w))])
-        if v not in out:
-            out.append(v)
-    return out
+    frequencies nearest the three lowest nonzero modes in the sweep
+    (:func:`acoustic_fem.scenario.map_frequencies`)."""
+    from .scenario import map_frequencies as _map_frequencies
+
+    return _map_frequencies(sol.scenario, sol.modes.frequencies, sol.frequencies)
 
 
 def plot_spl_map(sol) -> tuple[bytes, str] | None:
@@ -694,6 +808,12 @@ def render_report(sol, rows, images: Sequence[tuple[str, bytes, str]], *,
     if box:
         header += ["type", "(nx, ny, nz)"]
     header += ["elements/λ", "est. error (%)"]
+    est = _has_estimate(rows)
+    damped_est = est and any(r["decay_rate_per_s"] > 0 for r in rows)
+    if est:
+        header += ["a-posteriori error estimate", "corrected f (Hz)"]
+    if damped_est:
+        header += ["est. δ error", "corrected δ (1/s)"]
     trs = []
     for r in rows:
         row = [r["index"], f"{r['frequency_hz']:.2f}", _fmt(r["decay_rate_per_s"], 3),
@@ -701,8 +821,35 @@ def render_report(sol, rows, images: Sequence[tuple[str, bytes, str]], *,
         if box:
             row += [r["mode_type"], r["box_indices"]]
         row += [f"{r['elements_per_wavelength']:.1f}", _fmt(r["estimated_error_percent"], 2)]
+        if est:
+            e, fc = r["estimated_relative_error"], r["corrected_frequency_hz"]
+            row += ["n/a" if math.isnan(e) else f"{e:.2e}",
+                    "n/a" if math.isnan(fc) else f"{fc:.3f}"]
+        if damped_est:
+            e, dc = r["estimated_decay_rate_error"], r["corrected_decay_rate_per_s"]
+            row += ["n/a" if math.isnan(e) else f"{e:.2e}",
+                    "n/a" if math.isnan(dc) else _fmt(dc, 4)]
         trs.append(row)
     parts.append(_table(header, trs, num_cols=tuple(range(len(header)))))
+    if est:
+        parts.append(
+            '<p class="muted">est. error (%): rule-of-thumb dispersion estimate from the '
+            "elements per wavelength. a-posteriori error estimate: the estimated relative "
+            "frequency error (f_h − f)/f of each mode, by "
+            f"{_e(m.errors.method)}; corrected f: the enriched-space frequency, labelled "
+            "corrected — an estimate beside the solved f, not a measurement"
+            + ("; est. δ error and corrected δ: the same for the decay rate" if damped_est
+               else "") + ". Neither covers errors of the model itself (wall data, speed of "
+            "sound, geometry). n/a: not available (damping = 'perturbation', or the "
+            "relative frequency error of a near-0 Hz mode).</p>")
+        target = dict(m.info).get("accuracy_target")
+        if target:
+            parts.append(
+                f'<p class="muted">Accuracy target {target["tol"]:g} '
+                f'({"met" if target["met"] else "NOT met"}) after {len(target["steps"])} '
+                f'solve(s), budget {target["budget"].get("max_dofs")} DOFs / '
+                f'{target["budget"].get("max_seconds")} s; last solve '
+                f'{target["steps"][-1]["n_dofs"]} DOFs.</p>')
     info = dict(m.info)
     parts.append(f'<p class="muted">{len(m)} modes, {info.get("n_dofs", m.dofs.n_dofs)} DOFs, '
                  f'solver: {_e(info.get("method", ""))}.</p>')
@@ -844,6 +991,9 @@ def write_results(sol, out, *, overwrite: bool = False,
         if sc.outputs.vtk and len(sol.modes):
             _write_mode_vtus(tmp, sol, progress)
             files += ["modes.pvd", "vtk/"]
+        if sc.outputs.vtk and getattr(sol, "field", None) is not None:
+            write_field_vtus(tmp, sol.field)
+            files += ["response.pvd"] + ([] if "vtk/" in files else ["vtk/"])
         images: list[tuple[str, bytes, str]] = []
         if sc.outputs.plots or sc.outputs.report:
             plots = [("Mode frequencies and decay", "mode_frequencies.png",

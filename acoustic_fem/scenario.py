@@ -522,12 +522,19 @@ class SweepSpec:
     accuracy_percent : float
         Target relative error of the eigenfrequencies at max_hz from the
         discretisation (dispersion estimate), which sets the mesh size.
+    error_target : float or None
+        ``error_target``: accuracy target on the *a-posteriori estimated*
+        relative frequency error of every mode up to max_hz (e.g. 1e-3); the
+        mesh is refined until it is met (``solve_modes(..., tol=error_target)``;
+        damped modes: decay-rate errors reported, not targeted).
+        None (default): one solve on the mesh from ``accuracy_percent``.
     """
 
     min_hz: float
     max_hz: float
     step_hz: float
     accuracy_percent: float
+    error_target: float | None = None
 
     @property
     def frequencies(self) -> np.ndarray:
@@ -575,6 +582,11 @@ class Scenario:
         How absorbing walls enter the modes (``solve_modes(damping=...)``).
     response_method : "modal" or "direct"
         How the frequency sweep is solved (``solve_response(method=...)``).
+    estimate_errors : bool
+        ``[solver] estimate_errors``: attach the a-posteriori error estimate
+        to every mode (``solve_modes(estimate=True)``): the modes table gains
+        the estimated error and corrected frequency, the mode VTK files the
+        element-wise indicator.  Always on with ``error_target``.
     """
 
     path: Path | None
@@ -593,6 +605,7 @@ class Scenario:
     outputs: OutputSpec
     damping: str = "exact"
     response_method: str = "modal"
+    estimate_errors: bool = False
     _ctx: Any = field(default=None, repr=False)
 
     @property
@@ -770,10 +783,11 @@ def parse_scenario(text: str, path=None) -> Scenario:
                                             "2 (quadratic, the default).")
         size_m = mtab.number("size_m", "m", default=None, low=0.0, low_open=True)
     sweep = _read_sweep(top)
-    stab = top.sub("solver", ("damping", "response_method"), "[solver]")
+    stab = top.sub("solver", ("damping", "response_method", "estimate_errors"), "[solver]")
     damping = stab.string("damping", default="exact", choices=DAMPING_METHODS) if stab else "exact"
     rmethod = (stab.string("response_method", default="modal", choices=RESPONSE_METHODS)
                if stab else "modal")
+    want_estimate = stab.boolean("estimate_errors", default=False) if stab else False
     materials_all = _read_materials(ctx, top, folder)
     surfaces, used = _read_surfaces(ctx, top, materials_all)
     sources = _read_sources(top)
@@ -786,8 +800,15 @@ def parse_scenario(text: str, path=None) -> Scenario:
         surfaces=MappingProxyType(surfaces),
         materials=MappingProxyType({n: materials_all[n] for n in used}),
         air=air, sources=tuple(sources), receivers=tuple(receivers), sweep=sweep,
-        outputs=outputs, damping=damping, response_method=rmethod, _ctx=ctx,
+        outputs=outputs, damping=damping, response_method=rmethod,
+        estimate_errors=want_estimate or sweep.error_target is not None, _ctx=ctx,
     )
+    if sweep.error_target is not None and damping == "perturbation":
+        raise ctx.error(
+            ("frequencies", "error_target"),
+            f"{sweep.error_target:g} needs [solver] damping = \"exact\": modes from "
+            "\"perturbation\" are first-order approximations without an error estimate. "
+            "Remove one of the two keys.")
     _check_against_geometry(sc)
     return sc
 
@@ -1004,8 +1025,8 @@ def _read_rename(t: _Table) -> dict:
 
 
 def _read_sweep(top: _Table) -> SweepSpec:
-    t = top.sub("frequencies", ("min_hz", "max_hz", "step_hz", "accuracy_percent"),
-                "[frequencies]", required=True)
+    t = top.sub("frequencies", ("min_hz", "max_hz", "step_hz", "accuracy_percent",
+                                "error_target"), "[frequencies]", required=True)
     fmax = t.number("max_hz", "Hz", low=0.0, low_open=True, high=20000.0)
     fmin = t.number("min_hz", "Hz", default=min(20.0, fmax / 2), low=0.0, low_open=True)
     if fmin >= fmax:
@@ -1016,7 +1037,11 @@ def _read_sweep(top: _Table) -> SweepSpec:
         raise t.err("step_hz", f"{step:g} Hz gives {n} frequencies from {fmin:g} to {fmax:g} Hz; "
                                f"at most {MAX_FREQUENCIES} are allowed: use a larger step.")
     acc = t.number("accuracy_percent", "%", default=0.5, low=0.01, high=20.0)
-    return SweepSpec(fmin, fmax, step, acc)
+    # a relative error (not %): 1e-6 is about the limit of the eigensolver's
+    # tolerance, 0.1 the point beyond which the estimate is meaningless
+    target = t.number("error_target", "(relative error, e.g. 1e-3)", default=None,
+                      low=1e-6, high=0.1)
+    return SweepSpec(fmin, fmax, step, acc, target)
 
 
 def _read_csv_table(t: _Table, key: str, folder: Path, columns: Sequence[str]):
@@ -1602,6 +1627,10 @@ class Solution:
     timings : mapping stage -> seconds
     notes : tuple of str
         Warnings raised during the run and facts the report should state.
+    field : PressureField or None
+        The pressure on every DOF at the SPL-map frequencies
+        (:func:`map_frequencies`), for the response VTK files; None without
+        a response.
     """
 
     scenario: Scenario
@@ -1614,6 +1643,38 @@ class Solution:
     map_pressure: Any
     timings: Mapping
     notes: tuple
+    field: Any = None
+
+
+def map_frequencies(sc: Scenario, mode_frequencies, frequencies) -> list[float]:
+    """Frequencies of the SPL maps and of the response VTK files.
+
+    ``outputs.map_frequencies_hz``, else the three lowest nonzero
+    eigenfrequencies in the sweep; each moved to the nearest sweep
+    frequency (duplicates dropped).
+
+    Parameters
+    ----------
+    sc : Scenario
+    mode_frequencies : (n_modes,) array, Hz
+    frequencies : (n_f,) array, Hz (the sweep)
+
+    Returns
+    -------
+    list of float, Hz, each one of ``frequencies``.
+    """
+    f = np.asarray(frequencies, dtype=float)
+    want = list(sc.outputs.map_frequencies_hz)
+    if not want:
+        fm = [float(x) for x in np.asarray(mode_frequencies, dtype=float)
+              if sc.sweep.min_hz <= x <= sc.sweep.max_hz and x > 0]
+        want = fm[:3]
+    out = []
+    for w in want:
+        v = float(f[np.argmin(np.abs(f - w))])
+        if v not in out:
+            out.append(v)
+    return out
 
 
 def map_plane(sc: Scenario, mesh):
@@ -1660,7 +1721,32 @@ def solve_scenario(sc: Scenario, progress: ProgressFn | None = None) -> Solution
     Returns
     -------
     Solution
+
+    Notes
+    -----
+    The run uses :data:`SCENARIO_BLAS_THREADS` BLAS threads unless the
+    environment sets a thread count itself (``OMP_NUM_THREADS``,
+    ``OPENBLAS_NUM_THREADS``, ``MKL_NUM_THREADS``): measured on the demo
+    (3 k DOFs) on 2 cores shared with other jobs (load average 9), the
+    library's default of one BLAS thread per core took 32-46 s, one thread
+    2.6-3.4 s, the results being the same algorithms' (the busy-waiting
+    threads of the BLAS compete with the other jobs for the cores).
     """
+    import os
+
+    from threadpoolctl import threadpool_limits
+
+    own = any(os.environ.get(v) for v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS",
+                                          "MKL_NUM_THREADS"))
+    with threadpool_limits(limits=None if own else SCENARIO_BLAS_THREADS, user_api="blas"):
+        return _solve_scenario(sc, progress)
+
+
+#: BLAS threads of a scenario run (see :func:`solve_scenario`).
+SCENARIO_BLAS_THREADS = 1
+
+
+def _solve_scenario(sc: Scenario, progress: ProgressFn | None = None) -> Solution:
     from .assembly import assemble
     from .modes import solve_modes
 
@@ -1685,8 +1771,28 @@ def solve_scenario(sc: Scenario, progress: ProgressFn | None = None) -> Solution
         kw = {}
         if "damping" in inspect.signature(solve_modes).parameters:
             kw["damping"] = sc.damping
-        modes = solve_modes(mesh, walls, order=sc.element_order, fmax=sc.sweep.max_hz,
-                            air=sc.air, assembly=asm, **kw)
+        target = sc.sweep.error_target
+        if target is None:
+            if sc.estimate_errors:
+                kw["estimate"] = True
+            modes = solve_modes(mesh, walls, order=sc.element_order, fmax=sc.sweep.max_hz,
+                                air=sc.air, assembly=asm, **kw)
+        else:
+            # the accuracy target refines the mesh (uniformly, keeping its surfaces):
+            # the response and every output below use the last mesh
+            modes = solve_modes(mesh, walls, order=sc.element_order, fmax=sc.sweep.max_hz,
+                                air=sc.air, tol=target, estimate=True)
+            acc = dict(modes.info)["accuracy_target"]
+            notes.append(
+                f"Accuracy target {target:g} (a-posteriori estimate) met after "
+                f"{len(acc['steps'])} solve(s): {acc['steps'][-1]['n_dofs']} DOFs, largest "
+                f"estimated error {acc['steps'][-1]['max_error']:.2g} (budget stated before "
+                f"the first solve: {acc['budget']['max_dofs']} DOFs, "
+                f"{acc['budget']['max_seconds']} s).")
+            if modes.mesh is not mesh:
+                mesh = modes.mesh
+                walls = scenario_walls(sc, mesh)
+                asm = assemble(mesh, sc.element_order)
         timings["modes"] = time.perf_counter() - t
         if progress:
             progress("modes", 1, 1)
@@ -1697,6 +1803,7 @@ def solve_scenario(sc: Scenario, progress: ProgressFn | None = None) -> Solution
                 "solver treated them as rigid (every decay rate is 0): the mode table shows "
                 "undamped modes.")
         response = None
+        field = None
         plane = map_plane(sc, mesh)
         map_p = None
         freqs = sc.sweep.frequencies
@@ -1708,20 +1815,22 @@ def solve_scenario(sc: Scenario, progress: ProgressFn | None = None) -> Solution
                              "version: only the modes were computed.")
             else:
                 t = time.perf_counter()
-                response, map_p = _sweep(api, sc, mesh, walls, freqs, plane.points, progress,
-                                         asm)
+                response, map_p, field = _sweep(
+                    api, sc, mesh, walls, freqs, plane.points, progress, asm,
+                    field_hz=map_frequencies(sc, modes.frequencies, freqs))
                 timings["sweep"] = time.perf_counter() - t
     for w in caught:
         msg = str(w.message)
         if msg not in notes:
             notes.append(msg)
     return Solution(sc, mesh, MappingProxyType(walls), modes, response, freqs, plane,
-                    map_p, MappingProxyType(timings), tuple(notes))
+                    map_p, MappingProxyType(timings), tuple(notes), field)
 
 
-def _sweep(api, sc: Scenario, mesh, walls, freqs, map_pts, progress, asm):
+def _sweep(api, sc: Scenario, mesh, walls, freqs, map_pts, progress, asm, field_hz=()):
     """Run the response solver over the sweep for the receivers followed by the
-    map points; returns (response at the receivers, map pressure (n_f, n_m)).
+    map points; returns (response at the receivers, map pressure (n_f, n_m),
+    the PressureField on every DOF at ``field_hz`` (sweep frequencies) or None).
 
     The direct method runs in chunks of frequencies so that progress can be
     reported; the modal method solves the whole sweep at once (its basis is
@@ -1738,10 +1847,12 @@ def _sweep(api, sc: Scenario, mesh, walls, freqs, map_pts, progress, asm):
               else [freqs])
     parts, info = [], []
     done = 0
+    field_hz = np.asarray(field_hz, dtype=float)
     for ch in chunks:
+        here = field_hz[np.isin(field_hz, ch)]
         r = api.solve_response(mesh, walls, sources=sources, receivers=allpts, frequencies=ch,
                                order=sc.element_order, air=sc.air, method=sc.response_method,
-                               assembly=asm)
+                               assembly=asm, **({"field_frequencies": here} if here.size else {}))
         parts.append(r)
         done += len(ch)
         if progress:
@@ -1750,7 +1861,12 @@ def _sweep(api, sc: Scenario, mesh, walls, freqs, map_pts, progress, asm):
     res = np.concatenate([np.asarray(r.residuals) for r in parts])
     imb = np.concatenate([np.asarray(r.energy_imbalance) for r in parts])
     rr = ReceiverResponse(freqs, P[:, :nr], res, imb, dict(parts[0].info))
-    return rr, (P[:, nr:] if len(map_pts) else None)
+    got = [r.field for r in parts if getattr(r, "field", None) is not None]
+    field = None
+    if got:
+        field = api.PressureField(np.concatenate([g.frequencies for g in got]),
+                                  np.vstack([g.pressure for g in got]), got[0].dofs)
+    return rr, (P[:, nr:] if len(map_pts) else None), field
 
 
 @dataclass(frozen=True, eq=False)

@@ -21,7 +21,7 @@ from acoustic_fem.cli import Reporter, main
 
 PY = sys.executable
 ROOT = Path(__file__).resolve().parents[1]
-COMMANDS = ("run", "demo", "check", "mesh", "export", "materials", "modes", "info")
+COMMANDS = ("run", "demo", "check", "mesh", "export", "materials", "modes", "info", "verify")
 
 SMALL = """\
 [scenario]
@@ -316,7 +316,7 @@ def test_interrupt_leaves_no_partial_folder_and_rerun_works(tmp_path):
 
 
 # ---------------------------------------------------------------- the demo
-@pytest.mark.slow
+# not marked slow: demo + rerun take about 20 s on 2 shared cores
 def test_demo_then_rerun_gives_identical_modes_tables(tmp_path):
     a, b = tmp_path / "A", tmp_path / "B"
     t0 = time.perf_counter()
@@ -331,6 +331,8 @@ def test_demo_then_rerun_gives_identical_modes_tables(tmp_path):
     assert (a / "mixing_room.toml").read_text() == (b / "mixing_room.toml").read_text()
     for png in ("mode_frequencies", "mode_slices", "seat_spl", "seat_spread", "spl_map"):
         assert (a / "plots" / f"{png}.png").exists()
+    # the response field at the SPL-map frequencies, collected for a viewer
+    assert (a / "response.pvd").exists() and (a / "vtk" / "response_000.vtu").exists()
     # the demo room's lowest nonzero mode lies near c/(2 L) with L the 4.6 m
     # length (Morse & Ingard §9.4 axial mode of a box of that length): the
     # sloped ceiling and cut corner move it by a few per cent only
@@ -397,3 +399,67 @@ def test_info_prints_regions(tmp_path, capsys):
     assert main(["info", box]) == 0
     out = capsys.readouterr().out
     assert "volume  air: 2 m³" in out and "surface x0: 1 m²" in out
+
+
+# ---------------------------------------------------------------- verify
+def _verification_rows(folder):
+    with open(folder / "verification.csv", newline="", encoding="utf-8") as fh:
+        return list(csv.DictReader(fh))
+
+
+def test_verify_quick_passes_and_writes_the_report(tmp_path, capsys):
+    # the tube and duct groups compare with Kinsler, Frey, Coppens & Sanders,
+    # Fundamentals of Acoustics (2000) §10.2 and Morse & Ingard, Theoretical
+    # Acoustics (1968) §9.4 (the sources are in every row); the whole quick
+    # report is run by tests/test_verification_report.py
+    out = tmp_path / "qa"
+    assert main(["verify", "--quick", "--group", "tube", "--group", "duct", "--out",
+                 str(out)]) == 0
+    printed = capsys.readouterr()
+    lines = printed.out.strip().splitlines()
+    assert len(lines) == 1 and "all passed" in lines[0] and "verification (quick)" in lines[0]
+    rows = _verification_rows(out)
+    assert len(rows) >= 40 and {r["passed"] for r in rows} == {"pass"}
+    assert {r["group"] for r in rows} == {"tube", "duct"}
+    assert all(r["source"] for r in rows)
+    assert "all checks passed" in (out / "verification.html").read_text(encoding="utf-8")
+    assert not [p for p in tmp_path.iterdir() if p.name.endswith(".part")]  # atomic
+    # not overwritten without --force (exit 2, one line), replaced with it
+    assert main(["verify", "--quick", "--group", "tube", "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "--force" in err
+    assert len(_verification_rows(out)) == len(rows)
+    assert main(["verify", "--quick", "--group", "tube", "--out", str(out), "--force",
+                 "-q"]) == 0
+    assert capsys.readouterr().out == ""
+    assert {r["group"] for r in _verification_rows(out)} == {"tube"}
+
+
+def test_verify_fails_visibly_with_a_perturbed_solver(tmp_path, monkeypatch, capsys):
+    # a deliberately broken solver (as in test_verification_report.py): every
+    # FE frequency 0.1 % high, as if the speed of sound were 0.1 % off; the P2
+    # tube tolerances of the report are ~1e-4 and below (Kinsler et al. 2000
+    # §10.2 references), so rows must fail and the command must exit 1
+    import acoustic_fem as af
+
+    real = af.Air.frequency
+    monkeypatch.setattr(af.Air, "frequency", lambda self, lam: 1.001 * real(self, lam))
+    out = tmp_path / "broken"
+    assert main(["verify", "--quick", "--group", "tube", "--out", str(out)]) == 1
+    printed = capsys.readouterr()
+    assert printed.err.count("\n") == 1 and "FAILED" in printed.err
+    assert printed.err.startswith("acoustic-fem: failed: ") and "Traceback" not in printed.err
+    rows = _verification_rows(out)  # the report is still written, with the failures
+    n_fail = sum(r["passed"] == "FAIL" for r in rows)
+    assert n_fail >= 10
+    assert f"{n_fail} of {len(rows)} checks FAILED" in (out / "verification.html").read_text(
+        encoding="utf-8")
+
+
+def test_verify_bad_input_exit_2(tmp_path, capsys):
+    assert main(["verify", "--group", "boxes", "--out", str(tmp_path / "x")]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "'boxes'" in err and "tube" in err
+    assert not (tmp_path / "x").exists()
+    r = _run("verify")  # --out missing: argparse, one line, exit 2
+    assert r.returncode == 2 and r.stderr.count("\n") == 1 and "--out" in r.stderr

@@ -22,6 +22,7 @@ error exceeds 1e-6.  Measured effectivities are quoted beside the checks.
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -220,7 +221,7 @@ def test_estimate_rejects_other_input(box_mesh):
 
 
 # ---------------------------------------------------------------------------
-# the acceptance cases on gmsh meshes, two sizes each (slow)
+# the acceptance cases on gmsh meshes, two sizes each (1-5 s each)
 # ---------------------------------------------------------------------------
 ACCEPT_BOX = (1.6, 1.1, 0.9)
 #: mesh sizes (two per case) and fmax of the acceptance cases
@@ -241,7 +242,6 @@ def _acceptance_case(name, h, fmax, tmp):
     return mesh, None, analytic.sphere_modes(0.5, c=C, fmax=fmax).frequencies
 
 
-@pytest.mark.slow
 @pytest.mark.filterwarnings("ignore::acoustic_fem.ResolutionWarning")  # coarse on purpose
 @pytest.mark.parametrize("name", list(ACCEPT_SIZES))
 def test_effectivity_acceptance(name, tmp_path):
@@ -393,19 +393,20 @@ def test_solve_to_tolerance_refuses_over_budget():
             solve_to_tolerance(mesh, tol=bad, fmax=500.0)
 
 
-@pytest.mark.slow
 def test_l_shaped_room_to_tolerance():
     # Acceptance: tol = 1e-3 on an L-shaped room; every mode below fmax
     # within 1e-3 of a refined reference, with no more than 2x the DOFs of
     # the smallest uniform mesh that achieves it.
     #
     # Reference: a mesh graded towards the re-entrant edge (walls 3 and 4
-    # meet there; the low modes are singular, error ~ h^(4/3)), ~93 k P2
-    # DOFs, its corrected (P3-enriched) frequencies: measured within 2.3e-5
-    # of the corrected values of a 240 k-DOF graded solve, a fortieth of tol.
-    # Measured for the record (fmax 80 Hz, 8 modes): the smallest uniform mesh
-    # meeting 1e-3 has 11-15 k DOFs (10.9 k: 1.07e-3; 15.4 k: 9.1e-4); the
-    # solve ends at 15.3 k DOFs with a largest error of 8.9e-4.
+    # meet there; the low modes are singular, error ~ h^(4/3)), ~31 k P2
+    # DOFs, its corrected (P3-enriched) frequencies: measured within 7.9e-5
+    # of the corrected values of a 93 k-DOF graded solve, which are within
+    # 2.3e-5 of those of a 240 k-DOF graded solve -- about a tenth of tol.
+    # Measured for the record (fmax 80 Hz, 8 modes): the uniform meshes of the
+    # builder err by 3.1e-3 (1.9 k DOFs), 2.0e-3 (3.0 k), 1.5e-3 (5.6 k),
+    # 1.19e-3 (8.6 k), 1.15e-3 (10.9 k), 1.09e-3 (13.1 k), 8.9e-4 (15.4 k);
+    # the solve ends at 15-20 k DOFs with a true largest error of 8.5e-4.
     from acoustic_fem import geometry
 
     P, H, fmax = meshgen.LSHAPE_FLOOR, meshgen.LSHAPE_HEIGHT, 80.0
@@ -414,9 +415,9 @@ def test_l_shaped_room_to_tolerance():
     def build(h):
         return geometry.floor_plan(P, H, fmax=C / (6 * h), air=AIR)
 
-    graded = geometry.floor_plan(P, H, fmax=C / (6 * 0.45 * h0), air=AIR,
-                                 refine={"wall_3": 0.06, "wall_4": 0.06})
-    ref_modes = af.solve_modes(graded, order=2, fmax=1.3 * fmax, air=AIR)
+    graded = geometry.floor_plan(P, H, fmax=C / (6 * 0.6 * h0), air=AIR,
+                                 refine={"wall_3": 0.1, "wall_4": 0.1})
+    ref_modes = af.solve_modes(graded, order=2, fmax=1.15 * fmax, air=AIR)
     ref_err = estimate_errors(ref_modes, indicators=False)
     reference = ref_err.corrected_frequencies
 
@@ -426,12 +427,315 @@ def test_l_shaped_room_to_tolerance():
     assert reference[n - 1] <= fmax < reference[n]  # the same modes below fmax
     true = np.abs(res.frequencies[1:] / reference[1:n] - 1)
     assert np.all(true <= 1e-3), true
-    # smallest uniform mesh meeting the target: builder sizes from coarse to fine
-    smallest = None
+    # "no more than 2x the DOFs of the smallest uniform mesh that achieves it":
+    # the solve's own last mesh is a uniform builder mesh that achieves it
+    # (checked just above), so the smallest one exists and has at most
+    # res DOFs; it has at least half of them if every builder mesh of the
+    # scan (coarse to fine) with fewer than half the DOFs misses the target
+    # (those are cheap to solve; the scan stops at half the DOFs)
+    half = res.modes.dofs.n_dofs / 2
+    checked = 0
     for s in (1.0, 0.8, 0.6, 0.5, 0.45, 0.42, 0.4, 0.37, 0.34, 0.3):
-        m = af.solve_modes(build(h0 * s), order=2, count=n, air=AIR)
-        if np.all(np.abs(m.frequencies[1:] / reference[1:n] - 1) <= 1e-3):
-            smallest = m.dofs.n_dofs
+        mesh = build(h0 * s)
+        if af.DofMap(mesh, 2).n_dofs >= half:
             break
-    assert smallest is not None
-    assert res.modes.dofs.n_dofs <= 2 * smallest, (res.modes.dofs.n_dofs, smallest)
+        m = af.solve_modes(mesh, order=2, count=n, air=AIR)
+        worst = float(np.max(np.abs(m.frequencies[1:] / reference[1:n] - 1)))
+        assert worst > 1e-3, (s, m.dofs.n_dofs, worst, res.modes.dofs.n_dofs)
+        checked += 1
+    assert checked >= 3  # the comparison is not empty
+
+
+# ---------------------------------------------------------------------------
+# solve_modes(estimate=True / tol=...)
+# ---------------------------------------------------------------------------
+def test_solve_modes_estimate_attaches_the_estimate(box_mesh):
+    walls = {"x1": PressureRelease()}
+    exact = analytic.box_modes(BOX, c=C, walls={"x1": "pressure_release"},
+                               fmax=500.0).frequencies  # Morse & Ingard §9.4
+    plain = af.solve_modes(box_mesh, walls, order=2, count=len(exact), air=AIR)
+    # backwards compatible: no estimate unless asked for (None, not a number)
+    assert plain.errors is None and not plain.estimated
+    assert plain.frequency_errors is None and plain.corrected_frequencies is None
+    assert plain.cell_indicators is None
+    assert "estimated_relative_error" not in plain.table()[0]
+    modes = af.solve_modes(box_mesh, walls, order=2, count=len(exact), air=AIR, estimate=True)
+    np.testing.assert_array_equal(modes.frequencies, plain.frequencies)
+    direct = estimate_errors(plain)
+    np.testing.assert_allclose(modes.frequency_errors, direct.frequency_errors, rtol=1e-9)
+    np.testing.assert_allclose(modes.corrected_frequencies, direct.corrected_frequencies,
+                               rtol=1e-12)
+    # acceptance band of the issue against the analytic modes (Morse & Ingard
+    # §9.4): estimated / true in [1/3, 3]; measured 0.85-0.96 at P2 (above)
+    ratio = effectivity(modes, modes.errors, exact)
+    assert ratio.size >= 8 and in_band_share(ratio) >= 0.95, ratio
+    # the indicators are there for export and sum to each mode's estimate
+    assert modes.cell_indicators.shape == (box_mesh.n_cells, len(modes))
+    np.testing.assert_allclose(modes.cell_indicators.sum(axis=0), modes.frequency_errors,
+                               rtol=1e-12, atol=1e-15)
+    row = modes.table()[3]
+    assert row["estimated_relative_error"] == modes.frequency_errors[3]
+    assert row["corrected_frequency_hz"] == modes.corrected_frequencies[3]
+    assert modes.info["estimate_seconds"] > 0
+    with pytest.raises(InputError, match="estimate"):
+        af.solve_modes(box_mesh, count=3, estimate="yes")
+
+
+def _tube_roots(beta, n, length):
+    """Exact roots of a tube rigid at x = 0 with admittance β at x = L: k_n L = nπ + i artanh β.
+
+    Kinsler, Frey, Coppens & Sanders (2000) §10.2, the impedance-terminated
+    tube, written for e^{+iωt} (derived in tests/test_damped.py::tube_roots).
+    """
+    return (np.arange(n) * np.pi + 1j * np.arctanh(complex(beta))) / length
+
+
+def _box_roots(beta, kmax, size, nmax=8):
+    """Exact roots k of a box rigid except x = L_x with admittance β, Re k <= kmax.
+
+    Separation of variables (Morse & Ingard §9.4): p = cos(k_x x) cos(k_y y)
+    cos(k_z z), k_y, k_z = nπ/L of the rigid walls, and the wall condition
+    ∂p/∂x = −ikβp at x = L_x gives k_x sin(k_x L_x) = i k β cos(k_x L_x) with
+    k² = k_x² + k_y² + k_z² (our derivation, e^{+iωt}).  Solved by Newton's
+    method, continued from β = 0 (rigid root nπ/L_x) in 40 steps; the
+    uniform mode is the tube root i artanh(β)/L_x.
+    """
+    Lx, Ly, Lz = size
+    out = []
+    for nx, ny, nz in itertools.product(range(nmax), repeat=3):
+        q2 = (ny * np.pi / Ly) ** 2 + (nz * np.pi / Lz) ** 2
+        if nx == 0 and q2 == 0:
+            out.append(1j * np.arctanh(complex(beta)) / Lx)
+            continue
+        kx = complex(nx * np.pi / Lx)
+        for step, t in enumerate(np.linspace(0, 1, 41)[1:]):
+            b = t * beta
+            if nx == 0 and step == 0:  # k_x² L_x ≈ i k β for small k_x
+                kx = np.sqrt(1j * np.sqrt(q2) * b / Lx)
+            for _ in range(60):
+                k = np.sqrt(kx * kx + q2)
+                F = kx * np.sin(kx * Lx) - 1j * k * b * np.cos(kx * Lx)
+                dF = (np.sin(kx * Lx) + kx * Lx * np.cos(kx * Lx)
+                      - 1j * b * (kx / k * np.cos(kx * Lx) - k * Lx * np.sin(kx * Lx)))
+                kx -= F / dF
+                if abs(F / dF) < 1e-14 * max(1.0, abs(kx)):
+                    break
+        k = np.sqrt(kx * kx + q2)
+        if k.real <= kmax:
+            out.append(k)
+    out = np.array(out)
+    return out[np.argsort(out.real)]
+
+
+def _damped_effectivities(modes, exact):
+    """(frequency, decay-rate) estimated/|true| for the errors > 1e-6, FE roots paired
+    with the nearest exact root."""
+    kh = modes.wavenumbers
+    ex = np.array([exact[np.argmin(np.abs(exact - k))] for k in kh])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        tf = np.abs(kh.real / ex.real - 1)
+        td = np.abs(kh.imag / ex.imag - 1)
+    bf, bd = np.isfinite(tf) & (tf > 1e-6), td > 1e-6
+    return (modes.frequency_errors[bf] / tf[bf], modes.decay_rate_errors[bd] / td[bd])
+
+
+@pytest.mark.parametrize("order, n", [(1, 60), (2, 12)], ids=["P1", "P2"])
+@pytest.mark.parametrize("beta", [0.05, 0.2 + 0.1j], ids=["beta=0.05", "beta=0.2+0.1i"])
+def test_damped_tube_estimate_against_exact_roots(order, n, beta):
+    L = 0.85
+    modes = af.solve_modes(structured_line(L, n), {"x1": af.Impedance(admittance=beta)},
+                           order=order, count=8, air=AIR, estimate=True)
+    assert np.any(modes.decay_rates > 0)
+    rf, rd = _damped_effectivities(modes, _tube_roots(beta, 12, L))
+    assert rf.size >= 6 and rd.size >= 6
+    # the issue's band [1/3, 3], for the frequency and the decay rate; measured
+    # 0.97-1.00 (P2) and 1.00 (P1): in 1D the enriched space is far more accurate
+    for r in (rf, rd):
+        assert in_band_share(r) >= 0.95, r
+        assert np.all((r > 0.8) & (r < 1.25)), r
+    # the uniform-pressure mode: with a real β its frequency is 0 (k = i artanh β
+    # / L), so its relative frequency error is not defined -- NaN, not a number
+    # made up; a complex β gives it a small real frequency, which is estimated
+    assert np.isfinite(modes.decay_rate_errors[0])
+    assert np.isnan(modes.frequency_errors[0]) == (complex(beta).imag == 0)
+    assert np.all(np.isfinite(modes.frequency_errors[1:]))
+
+
+@pytest.mark.parametrize("beta, sizes", [(0.1, (6, 8)), (0.3 + 0.2j, (6,))],
+                         ids=["beta=0.1", "beta=0.3+0.2i"])
+def test_damped_box_estimate_against_exact_roots(beta, sizes):
+    fmax = 400.0
+    exact = _box_roots(beta, 2 * np.pi * 1.2 * fmax / C, BOX)
+    rf, rd = [], []
+    for n in sizes:  # two mesh sizes for the real admittance
+        modes = af.solve_modes(structured_box(BOX, n), {"x1": af.Impedance(admittance=beta)},
+                               order=2, fmax=fmax, air=AIR, estimate=True)
+        a, b = _damped_effectivities(modes, exact)
+        rf.append(a)
+        rd.append(b)
+        assert modes.cell_indicators.shape == (modes.mesh.n_cells, len(modes))
+        np.testing.assert_allclose(np.nansum(modes.cell_indicators, axis=0),
+                                   np.nan_to_num(modes.frequency_errors), rtol=1e-10,
+                                   atol=1e-15)
+    rf, rd = np.concatenate(rf), np.concatenate(rd)
+    assert rf.size >= 10 and rd.size >= 10
+    # the issue's band [1/3, 3] for >= 95 % of the modes; measured 0.86-1.2
+    # (frequency) and 0.76-1.11 (decay rate)
+    assert in_band_share(rf) >= 0.95, rf
+    assert in_band_share(rd) >= 0.95, rd
+
+
+def test_perturbation_modes_are_not_estimated_and_say_so():
+    # first-order (perturbation) modes are not eigenpairs of the discrete
+    # problem: NaN (never a made-up number) and an EstimateWarning
+    mesh = structured_box(BOX, 4)
+    walls = {"x1": af.Impedance(admittance=0.2)}
+    with pytest.warns(af.EstimateWarning, match="perturbation"):
+        modes = af.solve_modes(mesh, walls, order=2, count=4, air=AIR,
+                               damping="perturbation", estimate=True)
+    assert np.any(modes.decay_rates > 0)
+    assert modes.estimated and np.all(np.isnan(modes.frequency_errors))
+    assert np.all(np.isnan(modes.decay_rate_errors)) and modes.cell_indicators is None
+    with pytest.raises(InputError, match="perturbation"):
+        estimate_errors(modes)
+    with pytest.raises(InputError, match="damping='exact'"):
+        af.solve_modes(mesh, walls, tol=1e-3, fmax=200.0, air=AIR, damping="perturbation")
+
+
+@pytest.mark.parametrize("beta", [0.1, 0.2 + 0.1j], ids=["beta=0.1", "beta=0.2+0.1i"])
+def test_solve_modes_tol_with_an_impedance_end(beta):
+    # the accuracy target with damped modes: judged by the frequency errors;
+    # every mode up to fmax within tol of the exact roots of the
+    # impedance-terminated tube (Kinsler et al. 2000 §10.2, _tube_roots)
+    L, fmax, tol = 0.85, 1500.0, 1e-5
+    modes = af.solve_modes(structured_line(L, 6), {"x1": af.Impedance(admittance=beta)},
+                           order=1, fmax=fmax, air=AIR, tol=tol)
+    target = modes.info["accuracy_target"]
+    assert target["met"] and len(target["steps"]) >= 2
+    exact = _tube_roots(beta, 20, L)
+    exact = exact[C * exact.real / (2 * np.pi) <= fmax]
+    assert len(modes) == len(exact)
+    k = modes.wavenumbers
+    nz = exact.real > 0
+    assert np.all(np.abs(k.real[nz] / exact.real[nz] - 1) <= tol)
+    # decay rates are estimated and reported (not targeted): each estimate
+    # within a factor 3 of the true decay-rate error where that exceeds 1e-6
+    td = np.abs(k.imag / exact.imag - 1)
+    big = td > 1e-6
+    r = modes.decay_rate_errors[big] / td[big]
+    assert np.all((r >= 1 / 3) & (r <= 3)), r
+
+
+def test_enriched_boundary_mass_is_the_p2_boundary_mass():
+    # P1 ⊕ edge bubbles = P2 (as above): K + 3B over two faces has the same
+    # eigenvalues as the Lagrange P2 assembly's (rounding-level agreement)
+    for mesh in (structured_rect((1.0, 0.75), 4), structured_box((1.0, 0.75, 0.5), 3)):
+        names = ["x1", "y0"]
+        en = enrich(af.DofMap(mesh, 1))
+        K, M, _, _ = en.assemble()
+        a2 = af.assemble(mesh, 2)
+        np.testing.assert_allclose(
+            _eigs(K + 3 * en.boundary_mass(names), M),
+            _eigs(a2.K + 3 * af.boundary_mass(a2.dofs, names), a2.M), rtol=1e-10, atol=1e-9)
+
+
+def test_enriched_boundary_mass_equals_scikit_fem_p3():
+    # P2 ⊕ W = P3 on triangles: boundary mass against scikit-fem's ElementTriP3
+    # on a FacetBasis (independent library)
+    skfem = pytest.importorskip("skfem")
+    from skfem.models.poisson import laplace, mass
+
+    mesh = structured_rect((1.0, 0.75), 4)
+    en = enrich(af.DofMap(mesh, 2))
+    K, M, _, _ = en.assemble()
+    B = en.boundary_mass(list(mesh.surface_names))
+    m = skfem.MeshTri(mesh.points[:, :2].T.copy(), mesh.cells.T.copy())
+    basis = skfem.Basis(m, skfem.ElementTriP3())
+
+    @skfem.BilinearForm
+    def facet_mass(u, v, w):
+        return u * v
+
+    Bs = facet_mass.assemble(skfem.FacetBasis(m, skfem.ElementTriP3()))
+    np.testing.assert_allclose(_eigs(K + 3 * B, M),
+                               _eigs(laplace.assemble(basis) + 3 * Bs, mass.assemble(basis)),
+                               rtol=1e-10, atol=1e-9)
+
+
+def test_solve_modes_tol_meets_the_target_against_the_analytic_box():
+    # tol=1e-3 from a coarse structured box (uniform refinement): every mode
+    # below fmax within 1e-3 of the analytic value (Morse & Ingard §9.4)
+    fmax = 400.0
+    exact = analytic.box_modes(BOX, c=C, walls={"z1": "pressure_release"},
+                               fmax=fmax).frequencies
+    mesh = structured_box(BOX, 3)
+    modes = af.solve_modes(mesh, {"z1": PressureRelease()}, order=2, fmax=fmax, air=AIR,
+                           tol=1e-3)
+    target = modes.info["accuracy_target"]
+    assert target["met"] and target["tol"] == 1e-3
+    # the budget was stated up front (defaults) and every step is reported
+    assert target["budget"]["max_dofs"] == af.modes.TOL_MAX_DOFS > 0
+    assert target["budget"]["max_seconds"] == af.modes.TOL_MAX_SECONDS
+    assert [s["action"] for s in target["steps"]][-1] == "done"
+    assert len(target["steps"]) >= 2 and target["steps"][0]["action"] == "uniform refinement"
+    assert modes.mesh.n_cells == 8 ** (len(target["steps"]) - 1) * mesh.n_cells
+    assert len(modes) == len(exact)
+    true = np.abs(modes.frequencies / exact - 1)
+    assert np.all(true <= 1e-3), true
+    assert np.all(modes.frequency_errors <= 1e-3)
+    assert modes.cell_indicators is None  # tol alone: estimate without indicators
+    # the solve_modes default budget is the estimator's
+    from acoustic_fem.estimate import DEFAULT_MAX_DOFS
+
+    assert af.modes.TOL_MAX_DOFS == DEFAULT_MAX_DOFS
+
+
+def test_solve_modes_tol_stops_at_the_budget_with_partial_modes():
+    mesh = structured_box(BOX, 3)
+    with pytest.raises(af.BudgetExceededError, match="max_dofs=3000") as exc:
+        af.solve_modes(mesh, order=2, fmax=300.0, air=AIR, tol=1e-6, max_dofs=3000,
+                       estimate=True)
+    err = exc.value
+    assert isinstance(err, ConvergenceError)  # catchable as before
+    part = err.partial
+    assert isinstance(part, af.Modes) and part.dofs.n_dofs <= 3000
+    assert part.frequency_errors.max() > 1e-6 and part.cell_indicators is not None
+    assert not part.info["accuracy_target"]["met"]
+    assert err.budget["max_dofs"] == 3000 and len(err.steps) >= 1
+    with pytest.raises(af.BudgetExceededError, match="nothing was solved") as exc:
+        af.solve_modes(mesh, fmax=300.0, air=AIR, tol=1e-3, max_dofs=10)
+    assert exc.value.partial is None
+
+
+@pytest.mark.parametrize("kwargs, fragment", [
+    (dict(tol=1e-3), "needs fmax"),
+    (dict(tol=1e-3, fmax=300.0, count=4), "count"),
+    (dict(tol=0.0, fmax=300.0), "tol"),
+    (dict(tol=1e-3, fmax=300.0, max_dofs=0), "max_dofs"),
+    (dict(tol=1e-3, fmax=300.0, max_seconds=-1.0), "max_seconds"),
+])
+def test_solve_modes_tol_bad_input(kwargs, fragment):
+    with pytest.raises(InputError, match=fragment):
+        af.solve_modes(structured_box(BOX, 3), **kwargs)
+
+
+def test_solve_modes_tol_refuses_an_assembly():
+    mesh = structured_box(BOX, 3)
+    with pytest.raises(InputError, match="assembly"):
+        af.solve_modes(mesh, fmax=300.0, tol=1e-3, assembly=af.assemble(mesh, 2))
+
+
+def test_vtu_carries_the_indicator_as_cell_data(box_mesh, tmp_path):
+    import meshio
+
+    modes = af.solve_modes(box_mesh, order=2, count=5, air=AIR, estimate=True)
+    p = af.write_vtk(tmp_path / "m.vtu", modes)
+    got = meshio.read(p)
+    names = [f"error_mode_{i:03d}_{f:.3f}Hz" for i, f in enumerate(modes.frequencies)]
+    assert set(names) <= set(got.cell_data)
+    for i, name in enumerate(names):
+        np.testing.assert_array_equal(np.ravel(got.cell_data[name][0]),
+                                      modes.cell_indicators[:, i])
+    # without an estimate: no cell data, as before
+    plain = af.solve_modes(box_mesh, order=2, count=5, air=AIR)
+    assert not meshio.read(af.write_vtk(tmp_path / "p.vtu", plain)).cell_data

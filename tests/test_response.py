@@ -504,3 +504,48 @@ def test_bad_input(meshes):
         receiver_plane(mesh, spacing=0.1)  # 3D needs a height
     with pytest.raises(InputError):
         _synthetic(np.array([1.0]), np.ones((1, 1))).spl_map(1.0)  # not a plane
+
+
+# ------------------------------------------------------ full field
+@pytest.mark.parametrize("order", [1, 2])
+@pytest.mark.parametrize("method", ["direct", "modal"])
+def test_field_frequencies_give_the_whole_field(meshes, order, method):
+    """field_frequencies= keeps p on every DOF: sampled at the receivers it is
+    Response.pressure (the same interpolation of the same vector: rounding
+    only, 1e-12 relative), zero on the pressure-release face, and the modal
+    field agrees with the direct one to the modal accuracy (1 % of the
+    largest |p|, a loose bound: the residual target is tol = 1e-3)."""
+    mesh = meshes["box"]
+    rec = np.array([[0.6, 0.45, 0.35], [1.0, 0.2, 0.6], [0.3, 0.7, 0.1]])
+    f = np.linspace(100.0, 400.0, 7)
+    kw = dict(sources=PointSource((0.2, 0.2, 0.2), 1e-3), receivers=rec, frequencies=f,
+              order=order, air=AIR)
+    r = solve_response(mesh, MIXED, method=method, field_frequencies=[f[5], f[1]], **kw)
+    fld = r.field
+    assert isinstance(fld, af.PressureField)
+    assert np.allclose(fld.frequencies, f[[1, 5]])                 # sorted
+    assert fld.pressure.shape == (2, fld.dofs.n_dofs)
+    ref = r.pressure[[1, 5]]
+    assert np.allclose(fld.sample(rec), ref, rtol=0, atol=1e-12 * np.abs(ref).max())
+    fixed = fld.dofs.boundary_dofs([n for n, w in MIXED.items() if w.fixes_pressure])
+    assert fixed.size and np.all(fld.pressure[:, fixed] == 0)
+    assert np.all(np.isnan(fld.spl[:, fixed]))
+    free = np.setdiff1d(np.arange(fld.dofs.n_dofs), fixed)
+    assert np.allclose(fld.spl[:, free], 20 * np.log10(np.abs(fld.pressure[:, free])
+                                                       / np.sqrt(2) / 20e-6))
+    if method == "modal":
+        d = solve_response(mesh, MIXED, field_frequencies=[f[1], f[5]], **kw)
+        assert np.abs(fld.pressure - d.field.pressure).max() < 1e-2 * np.abs(d.field.pressure).max()
+    assert solve_response(mesh, MIXED, **kw).field is None
+
+
+def test_field_frequencies_must_be_solved(meshes):
+    with pytest.raises(InputError, match="160 Hz is not one of the frequencies solved; the nearest "
+                                         "is 150 Hz"):
+        solve_response(meshes["box"], MIXED, sources=PointSource((0.2, 0.2, 0.2), 1e-3),
+                       receivers=[(0.6, 0.45, 0.35)], frequencies=[100.0, 150.0],
+                       field_frequencies=[160.0], order=1, air=AIR)
+    with pytest.raises(InputError, match="field_frequencies"):
+        solve_response(meshes["box"], MIXED, sources=PointSource((0.2, 0.2, 0.2), 1e-3),
+                       receivers=[(0.6, 0.45, 0.35)], frequencies=[100.0],
+                       field_frequencies="loud", order=1, air=AIR)

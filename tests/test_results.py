@@ -84,7 +84,7 @@ def test_layout(folder):
     top = {n for n in names if "/" not in n}
     assert top == {"box.toml", "modes.csv", "modes.json", "modes.pvd", "modes_at_receivers.csv",
                    "spl_at_receivers.csv", "seat_statistics.csv", "pressure_at_receivers.json",
-                   "report.html", "summary.txt", "run.json"}
+                   "report.html", "summary.txt", "run.json", "response.pvd"}
     plots = {n for n in names if n.startswith("plots/")}
     assert plots == {f"plots/{n}.png" for n in ("mode_frequencies", "mode_slices", "seat_spl",
                                                 "seat_spread", "spl_map")}
@@ -127,6 +127,69 @@ def test_pvd_collects_one_vtu_per_mode_labelled_by_frequency(folder, solved):
         m = meshio.read(folder / s.get("file"))
         assert float(np.ravel(m.field_data["frequency_hz"])[0]) == pytest.approx(steps[i], abs=1e-5)
         assert np.allclose(np.ravel(m.point_data["mode_shape"]), solved.modes.shapes[:, i])
+
+
+def _tet10_value(mesh, values, x):
+    """Value at x of a quadratic field on a meshio tetra10 mesh, from the file alone.
+
+    Node order of VTK_QUADRATIC_TETRA (VTK file formats, cell type 24):
+    vertices 0-3, then mid-edge nodes of the edges (0,1), (1,2), (0,2),
+    (0,3), (1,3), (2,3).  Straight-sided cells: barycentric coordinates L of
+    the vertices; quadratic Lagrange basis L_i(2L_i - 1) at a vertex and
+    4 L_i L_j at the middle of edge (i, j) (Zienkiewicz & Taylor, The Finite
+    Element Method, vol. 1, §8.8, tetrahedron family; from memory).
+    """
+    cells = mesh.cells_dict["tetra10"]
+    V = mesh.points[cells[:, :4]]                                 # (n_c, 4, 3)
+    T = np.transpose(V[:, 1:] - V[:, :1], (0, 2, 1))              # (n_c, 3, 3)
+    lam = np.linalg.solve(T, (x - V[:, 0])[..., None])[..., 0]    # (n_c, 3)
+    L = np.column_stack([1.0 - lam.sum(1), lam])
+    c = int(np.argmax(L.min(axis=1)))                             # the cell holding x
+    assert L[c].min() > -1e-9
+    L = L[c]
+    edges = [(0, 1), (1, 2), (0, 2), (0, 3), (1, 3), (2, 3)]
+    N = np.concatenate([L * (2 * L - 1), [4 * L[i] * L[j] for i, j in edges]])
+    return N @ values[cells[c]]
+
+
+def test_response_vtus_round_trip(folder, solved):
+    """The forced-response field files: one .vtu per SPL-map frequency with real
+    arrays only, collected in response.pvd; read back with meshio they give
+    the pressure the solver reported at the receivers."""
+    from acoustic_fem.results import RESPONSE_ARRAYS, map_frequencies
+
+    fmap = map_frequencies(solved)
+    assert len(fmap) == 3 and solved.field is not None
+    root = ET.parse(folder / "response.pvd").getroot()
+    sets = root.find("Collection").findall("DataSet")
+    steps = np.array([float(s.get("timestep")) for s in sets])
+    assert np.allclose(steps, fmap, atol=1e-6)                  # the viewer's time is Hz
+    P_rec = np.asarray(solved.response.pressure)                # (n_f, n_r)
+    seats = np.array([r.position for r in solved.scenario.receivers])
+    for s, f in zip(sets, fmap):
+        assert f"{f:.2f} Hz" in s.get("name")
+        m = meshio.read(folder / s.get("file"))
+        assert float(np.ravel(m.field_data["frequency_hz"])[0]) == pytest.approx(f, abs=1e-9)
+        assert set(m.point_data) == set(RESPONSE_ARRAYS)
+        for a in m.point_data.values():
+            assert np.isrealobj(a)                              # never complex in VTK
+        pd = {k: np.ravel(v) for k, v in m.point_data.items()}
+        p = pd["pressure_real_pa"] + 1j * pd["pressure_imag_pa"]
+        assert np.allclose(pd["pressure_magnitude_pa"], np.abs(p), rtol=1e-12, atol=0)
+        # SPL = 20 log10(|p|/√2 / 20 µPa) (IEC 61672 reference pressure);
+        # NaN exactly where p = 0: the DOFs of the pressure-release ceiling
+        zero = np.abs(p) == 0
+        assert zero.any() and np.allclose(m.points[zero, 2], 1.5)
+        assert np.all(np.isnan(pd["spl_db"][zero]))
+        assert np.allclose(pd["spl_db"][~zero], 20 * np.log10(np.abs(p[~zero]) / np.sqrt(2) / 20e-6),
+                           rtol=1e-12)
+        # at each seat the file's field, interpolated by the quadratic basis
+        # of the cells read from the file, is the solver's receiver pressure:
+        # the same P2 function evaluated at the same point, so only rounding
+        # differs (1e-9 of the largest |p| at the receivers)
+        j = int(np.argmin(np.abs(solved.frequencies - f)))
+        got = np.array([_tet10_value(m, p, x) for x in seats])
+        assert np.allclose(got, P_rec[j], rtol=0, atol=1e-9 * np.abs(P_rec[j]).max())
 
 
 def test_response_tables(folder, solved):

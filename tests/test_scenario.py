@@ -514,3 +514,175 @@ def test_cad_file_with_face_selectors(tmp_path):
                                "bad.toml"))
     with pytest.raises(ScenarioError, match=r"receivers\[1\]\.position_m.*outside"):
         estimate_scenario_cost(bad)
+
+
+# ---------------------------------------------------------------- error estimate keys
+ESTIMATED_BOX = """\
+[scenario]
+title = "estimated box"
+
+[geometry]
+builder = "box"
+size = [2.0, 1.5, 1.2]
+
+[frequencies]
+max_hz = 150.0
+step_hz = 50.0
+
+[solver]
+estimate_errors = true
+
+[surfaces]
+z1 = "pressure_release"
+
+[outputs]
+plots = false
+"""
+
+
+@pytest.mark.parametrize("change, fragments", [
+    (("step_hz = 50.0", "step_hz = 50.0\nerror_target = 0.0"),
+     ["frequencies.error_target", "0.0", ">= 1e-06"]),
+    (("step_hz = 50.0", "step_hz = 50.0\nerror_target = 0.5"),
+     ["frequencies.error_target", "0.5", "<= 0.1"]),
+    (("step_hz = 50.0", 'step_hz = 50.0\nerror_target = "1e-3"'),
+     ["frequencies.error_target", "expected a number"]),
+    (("step_hz = 50.0", "step_hz = 50.0\nerror_taget = 1e-3"),
+     ["frequencies.error_taget", "did you mean 'error_target'"]),
+    (("estimate_errors = true", 'estimate_errors = "yes"'),
+     ["solver.estimate_errors", "expected true or false"]),
+    # first-order damped modes have no estimate: no accuracy target with them
+    (("estimate_errors = true", 'damping = "perturbation"\n[frequencies.x]'),
+     ["frequencies.error_target", 'damping = "exact"']),
+])
+def test_error_keys_are_validated(tmp_path, change, fragments):
+    text = ESTIMATED_BOX.replace(*change)
+    if "[frequencies.x]" in text:  # error_target with damping = "perturbation"
+        text = text.replace("\n[frequencies.x]", "").replace(
+            "step_hz = 50.0", "step_hz = 50.0\nerror_target = 1e-3")
+    assert text != ESTIMATED_BOX
+    msg = str(_error(tmp_path, text))
+    assert "\n" not in msg and str(tmp_path / "room.toml") in msg
+    for frag in fragments:
+        assert frag in msg, (frag, msg)
+
+
+def test_error_keys_default_off(tmp_path):
+    sc = load_scenario(_write(tmp_path, BOX))
+    assert sc.sweep.error_target is None and sc.estimate_errors is False
+    sc = load_scenario(_write(tmp_path, ESTIMATED_BOX.replace(
+        "step_hz = 50.0", "step_hz = 50.0\nerror_target = 2e-3"), "t.toml"))
+    assert sc.sweep.error_target == 2e-3 and sc.estimate_errors  # the target implies it
+
+
+@pytest.fixture(scope="module")
+def estimated_results(tmp_path_factory):
+    from acoustic_fem.results import write_results
+
+    d = tmp_path_factory.mktemp("estimated")
+    sc = load_scenario(_write(d, ESTIMATED_BOX))
+    sol = solve_scenario(sc)
+    return sol, write_results(sol, d / "out")
+
+
+def test_estimate_switch_reaches_tables_report_and_vtk(estimated_results):
+    import csv
+    import json
+
+    import meshio
+
+    sol, out = estimated_results
+    m = sol.modes
+    assert m.estimated and np.all(np.isfinite(m.frequency_errors))
+    # the estimate against the analytic box with a pressure-release ceiling
+    # (Morse & Ingard, Theoretical Acoustics, §9.4): the issue's band [1/3, 3]
+    # for the modes whose true error exceeds 1e-6
+    ref = analytic.box_modes((2.0, 1.5, 1.2), c=sc_c(sol), walls={"z1": "pressure_release"},
+                             count=len(m)).frequencies
+    true = m.frequencies / ref - 1
+    big = np.abs(true) > 1e-6
+    ratio = m.frequency_errors[big] / np.abs(true[big])
+    assert big.sum() >= 3 and np.mean((ratio >= 1 / 3) & (ratio <= 3)) >= 0.95, ratio
+    with open(out / "modes.csv", newline="", encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == len(m)
+    np.testing.assert_allclose([float(r["estimated_relative_error"]) for r in rows],
+                               m.frequency_errors, rtol=1e-3, atol=1e-12)
+    np.testing.assert_allclose([float(r["corrected_frequency_hz"]) for r in rows],
+                               m.corrected_frequencies, rtol=1e-8)
+    js = json.loads((out / "modes.json").read_text(encoding="utf-8"))
+    assert "Bank & Smith" in js["columns"]["estimated_relative_error"]
+    assert js["modes"][1]["corrected_frequency_hz"] == pytest.approx(
+        m.corrected_frequencies[1], rel=1e-8)
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "a-posteriori error estimate" in page and "corrected f (Hz)" in page
+    vtu = meshio.read(out / "vtk" / "mode_001.vtu")
+    np.testing.assert_array_equal(np.ravel(vtu.cell_data["estimated_error_indicator"][0]),
+                                  m.cell_indicators[:, 1])
+
+
+def sc_c(sol):
+    return sol.scenario.air.c
+
+
+def test_no_estimate_keeps_the_tables_as_before(tmp_path):
+    from acoustic_fem.results import MODE_COLUMNS, write_results
+
+    sc = load_scenario(_write(tmp_path, ESTIMATED_BOX.replace("estimate_errors = true",
+                                                              "estimate_errors = false")))
+    sol = solve_scenario(sc)
+    assert sol.modes.frequency_errors is None
+    out = write_results(sol, tmp_path / "out")
+    header = (out / "modes.csv").read_text(encoding="utf-8").splitlines()[0].split(",")
+    assert header == list(MODE_COLUMNS)
+    assert "a-posteriori error estimate" not in (out / "report.html").read_text(encoding="utf-8")
+
+
+@pytest.mark.filterwarnings("ignore::acoustic_fem.ResolutionWarning")
+def test_error_target_refines_until_met(tmp_path):
+    # the builder mesh of the default accuracy_percent has estimated errors up
+    # to ~1.3e-4 at 150 Hz (measured); error_target 2e-5 makes the run refine
+    # until every mode up to max_hz is estimated within the target; checked
+    # against the analytic box (Morse & Ingard §9.4)
+    sc = load_scenario(_write(tmp_path, ESTIMATED_BOX.replace(
+        "step_hz = 50.0", "step_hz = 50.0\nerror_target = 2e-5")))
+    from acoustic_fem.scenario import build_mesh
+
+    first = build_mesh(sc)
+    sol = solve_scenario(sc)
+    m = sol.modes
+    target = m.info["accuracy_target"]
+    assert target["met"] and len(target["steps"]) >= 2
+    assert sol.mesh is m.mesh and sol.mesh.n_cells > first.n_cells
+    assert any("Accuracy target 2e-05" in n for n in sol.notes)
+    ref = analytic.box_modes((2.0, 1.5, 1.2), c=sc.air.c, walls={"z1": "pressure_release"},
+                             fmax=150.0).frequencies
+    assert len(m) == len(ref)
+    assert np.all(np.abs(m.frequencies / ref - 1) <= 2e-5)
+
+
+def test_estimate_switch_with_an_absorbing_surface(tmp_path):
+    # a frequency-dependent wall (library carpet): the damped modes get
+    # frequency and decay-rate estimates (β frozen at each mode's frequency);
+    # the tables and the report show both, labelled
+    import csv
+
+    from acoustic_fem.results import write_results
+
+    sc = load_scenario(_write(tmp_path, ESTIMATED_BOX.replace(
+        'z1 = "pressure_release"', 'z0 = "carpet_on_concrete"').replace(
+        "max_hz = 150.0", "max_hz = 120.0")))
+    sol = solve_scenario(sc)
+    m = sol.modes
+    assert np.all(m.decay_rates > 0)
+    ok = np.isfinite(m.frequency_errors)
+    assert ok[1:].all() and np.all(np.isfinite(m.decay_rate_errors))
+    # decay rates: the corrected value is a small correction of the solved one
+    # (P2 at the default accuracy; measured < 1 %)
+    np.testing.assert_allclose(m.corrected_decay_rates, m.decay_rates, rtol=0.02)
+    out = write_results(sol, tmp_path / "out")
+    with open(out / "modes.csv", newline="", encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    assert all(r["estimated_decay_rate_error"] != "" for r in rows)
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "est. δ error" in page and "corrected δ (1/s)" in page

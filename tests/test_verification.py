@@ -513,7 +513,6 @@ def test_convergence_rate(cell, order):
 # ---------------------------------------------------------------------------
 # 6. fmax: every mode below fmax exactly once
 # ---------------------------------------------------------------------------
-@pytest.mark.slow
 def test_box_fmax_finds_every_mode_once(box_rigid_fmax):
     # Morse & Ingard (1968) §9.4 room modes up to fmax, with multiplicity
     exact = analytic.box_modes(BOX, c=C, fmax=BOX_FMAX).frequencies

@@ -116,7 +116,6 @@ def test_unavailable_checks_are_named():
         assert name and why
 
 
-@pytest.mark.slow
 def test_full_quick_report_passes(tmp_path):
     # the whole quick report, as a user runs it on a fresh install
     res = ver.run_checks(quick=True)
@@ -125,3 +124,26 @@ def test_full_quick_report_passes(tmp_path):
     expected = set(ver.GROUPS) - (set() if ver._have_response() else {"response"})
     assert {r.group for r in res} == expected
     ver.write_report(res, tmp_path / "full")
+
+
+def test_damped_checks_pass_and_fail_when_the_wall_is_wrong(monkeypatch):
+    # the damped group compares with the impedance-terminated tube (Kinsler,
+    # Frey, Coppens & Sanders 2000 §10.2) and the separable box with one
+    # admittance wall (Morse & Ingard 1968 §9.4 with the wall condition)
+    res = ver.run_checks(quick=True, groups=["damped"])
+    assert len(res) >= 18 and all(r.passed for r in res), [r for r in res if not r.passed]
+    assert {r.quantity for r in res} == {"frequency (Hz)", "decay rate (1/s)"}
+    # a deliberately broken wall: every admittance 1 % too large raises every
+    # decay rate by about 1 % (δ ∝ Re β to first order), far beyond the
+    # decay tolerances (<= 1.4e-3 relative)
+    from acoustic_fem.impedance import Impedance
+
+    real = Impedance.admittance_at
+
+    def broken(self, frequencies, air=None):
+        return 1.01 * real(self, frequencies, air)
+
+    monkeypatch.setattr(Impedance, "admittance_at", broken)
+    bad = ver.run_checks(quick=True, groups=["damped"])
+    failed = [r for r in bad if not r.passed and r.quantity == "decay rate (1/s)"]
+    assert len(failed) >= 8, failed
