@@ -39,7 +39,7 @@ from dataclasses import dataclass
 from typing import Optional
 
 import numpy as np
-from scipy import optimize, special
+from scipy import special
 
 from ._errors import InputError
 
@@ -709,12 +709,14 @@ def spherical_jn_derivative_zeros(l: int, x_max: float, step: float = 0.05) -> n
     x = x0 + step * np.arange(npts)
     y = _djl(x, l)
     roots = list(x[1:][y[1:] == 0.0])
+    from scipy.optimize import brentq  # lazily: scipy.optimize costs ~0.25 s of import
+
     change = np.nonzero(np.signbit(y[:-1]) != np.signbit(y[1:]))[0]
     for i in change:
         lo, hi = x[i], x[i + 1]
         if y[i] == 0.0 or y[i + 1] == 0.0:
             continue  # exact grid hit, recorded above (or y[0] at x0, impossible)
-        roots.append(optimize.brentq(_djl, lo, hi, args=(l,), xtol=1e-15))
+        roots.append(brentq(_djl, lo, hi, args=(l,), xtol=1e-15))
     roots = np.sort(np.array(roots, dtype=float))
     return roots[roots <= x_max]
 
