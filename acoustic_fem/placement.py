@@ -110,10 +110,11 @@ from ._errors import InputError
 from .air import Air
 from .assembly import Assembly
 from .mesh import Mesh
+from .response import _basis_modes as _response_basis_modes
 from .response import (P_REF, PointSource, _N_PICK, _enum, _evaluation,
                        _finite_real, _pick, _points3, _Problem, _Reduced, _warn_resolution,
                        solve_response)
-from .walls import PressureRelease, Rigid, Wall, resolve_walls
+from .walls import Wall, resolve_walls
 
 __all__ = ["Objective", "SourceLayout", "PlacementResult", "SeatResult", "optimise_placement",
            "optimise_seats", "layout_objective"]
@@ -348,32 +349,13 @@ _ROUND_SAMPLE = 24
 _SOURCES_PER_PICK = 4
 
 def _basis_modes(pb, mesh, order, modes, modal_factor):
-    """Real rigid/pressure-release modes for the reduced model (as response._solve_modal)."""
-    from .modes import Modes, ResolutionWarning, solve_modes
+    """Real rigid/pressure-release modes for the reduced model: None or a Modes."""
+    from .modes import Modes
 
-    if isinstance(modes, Modes):
-        if modes.dofs.mesh is not mesh or modes.order != order:
-            raise InputError("the Modes given were computed on another mesh or element order.")
-        m_fixed = sorted(n for n, w in modes.walls.items() if w.fixes_pressure)
-        if m_fixed != sorted(pb.fixed_names):
-            raise InputError(
-                f"the Modes given have pressure-release surfaces {m_fixed}, the walls here "
-                f"{sorted(pb.fixed_names)}; compute the modes with the same pressure-release "
-                "surfaces (absorbing walls as rigid)."
-            )
-        if np.any(np.asarray(modes.decay_rates) > 0):
-            raise InputError("the Modes given are damped; the modal basis needs the real modes "
-                             "of the rigid/pressure-release problem.")
-        return modes
-    if modes is not None:
+    if modes is not None and not isinstance(modes, Modes):
         raise InputError(f"modes={modes!r} must be None or a Modes of this mesh "
                          "(absorbing walls as rigid).")
-    basis_walls = {n: (PressureRelease() if w.fixes_pressure else Rigid())
-                   for n, w in pb.walls.items()}
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", ResolutionWarning)  # fine as basis vectors
-        return solve_modes(mesh, basis_walls, order=order, fmax=modal_factor * float(pb.f.max()),
-                           air=pb.air, assembly=pb.assembly)
+    return _response_basis_modes(pb, mesh, order, modes, modal_factor)
 
 
 def _reduced_all(red: _Reduced, pb: _Problem, idx: np.ndarray, chunk_bytes=64e6) -> np.ndarray:

@@ -1044,13 +1044,15 @@ _N_PICK = 8
 _N_SAMPLE = 48
 
 
-def _solve_modal(pb: _Problem, mesh, order, modes, modal_factor, refine, tol, backend,
-                 fields: dict | None = None):
-    from ._linalg import factorize
+def _basis_modes(pb: _Problem, mesh, order, modes, modal_factor):
+    """The real rigid/pressure-release modes of the reduced model's basis.
+
+    modes : Modes (checked against the mesh, order and pressure-release
+    surfaces of ``pb``), an int (that many lowest modes) or None (every mode
+    up to ``modal_factor`` times the highest frequency of ``pb``).
+    """
     from .modes import Modes, ResolutionWarning, solve_modes
 
-    info = {}
-    t0 = time.perf_counter()
     f_top = float(pb.f.max())
     if isinstance(modes, Modes):
         if modes.dofs.mesh is not mesh or modes.order != order:
@@ -1065,19 +1067,25 @@ def _solve_modal(pb: _Problem, mesh, order, modes, modal_factor, refine, tol, ba
         if np.any(np.asarray(modes.decay_rates) > 0):
             raise InputError("the Modes given are damped; the modal basis needs the real modes "
                              "of the rigid/pressure-release problem.")
-        md = modes
-    else:
-        basis_walls = {n: (PressureRelease() if w.fixes_pressure else Rigid())
-                       for n, w in pb.walls.items()}
-        with warnings.catch_warnings():
-            # modes above the mesh's resolution are fine as basis vectors
-            warnings.simplefilter("ignore", ResolutionWarning)
-            if modes is None:
-                md = solve_modes(mesh, basis_walls, order=order, fmax=modal_factor * f_top,
-                                 air=pb.air, assembly=pb.assembly)
-            else:
-                md = solve_modes(mesh, basis_walls, order=order, count=int(modes), air=pb.air,
-                                 assembly=pb.assembly)
+        return modes
+    basis_walls = {n: (PressureRelease() if w.fixes_pressure else Rigid())
+                   for n, w in pb.walls.items()}
+    size = dict(fmax=modal_factor * f_top) if modes is None else dict(count=int(modes))
+    with warnings.catch_warnings():
+        # modes above the mesh's resolution are fine as basis vectors
+        warnings.simplefilter("ignore", ResolutionWarning)
+        return solve_modes(mesh, basis_walls, order=order, air=pb.air, assembly=pb.assembly,
+                           **size)
+
+
+def _solve_modal(pb: _Problem, mesh, order, modes, modal_factor, refine, tol, backend,
+                 fields: dict | None = None):
+    from ._linalg import factorize
+
+    info = {}
+    t0 = time.perf_counter()
+    f_top = float(pb.f.max())
+    md = _basis_modes(pb, mesh, order, modes, modal_factor)
     Phi = np.ascontiguousarray(md.shapes[pb.free])
     lam = np.asarray(md.eigenvalues, dtype=float)
     info.update(n_modes=int(lam.size), modes_top_hz=float(md.frequencies.max(initial=0.0)),

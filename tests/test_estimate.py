@@ -22,7 +22,6 @@ error exceeds 1e-6.  Measured effectivities are quoted beside the checks.
 
 from __future__ import annotations
 
-import itertools
 import math
 
 import numpy as np
@@ -496,35 +495,13 @@ def _box_roots(beta, kmax, size, nmax=8):
     Separation of variables (Morse & Ingard §9.4): p = cos(k_x x) cos(k_y y)
     cos(k_z z), k_y, k_z = nπ/L of the rigid walls, and the wall condition
     ∂p/∂x = −ikβp at x = L_x gives k_x sin(k_x L_x) = i k β cos(k_x L_x) with
-    k² = k_x² + k_y² + k_z² (our derivation, e^{+iωt}).  Solved by Newton's
-    method, continued from β = 0 (rigid root nπ/L_x) in 40 steps; the
-    uniform mode is the tube root i artanh(β)/L_x.
+    k² = k_x² + k_y² + k_z² (our derivation, e^{+iωt}); the scalar roots by
+    Newton's method continued from β = 0, as the verification report's damped
+    group computes them (acoustic_fem.verification._impedance_box_roots).
     """
-    Lx, Ly, Lz = size
-    out = []
-    for nx, ny, nz in itertools.product(range(nmax), repeat=3):
-        q2 = (ny * np.pi / Ly) ** 2 + (nz * np.pi / Lz) ** 2
-        if nx == 0 and q2 == 0:
-            out.append(1j * np.arctanh(complex(beta)) / Lx)
-            continue
-        kx = complex(nx * np.pi / Lx)
-        for step, t in enumerate(np.linspace(0, 1, 41)[1:]):
-            b = t * beta
-            if nx == 0 and step == 0:  # k_x² L_x ≈ i k β for small k_x
-                kx = np.sqrt(1j * np.sqrt(q2) * b / Lx)
-            for _ in range(60):
-                k = np.sqrt(kx * kx + q2)
-                F = kx * np.sin(kx * Lx) - 1j * k * b * np.cos(kx * Lx)
-                dF = (np.sin(kx * Lx) + kx * Lx * np.cos(kx * Lx)
-                      - 1j * b * (kx / k * np.cos(kx * Lx) - k * Lx * np.sin(kx * Lx)))
-                kx -= F / dF
-                if abs(F / dF) < 1e-14 * max(1.0, abs(kx)):
-                    break
-        k = np.sqrt(kx * kx + q2)
-        if k.real <= kmax:
-            out.append(k)
-    out = np.array(out)
-    return out[np.argsort(out.real)]
+    from acoustic_fem.verification import _impedance_box_roots
+
+    return _impedance_box_roots(beta, kmax, size, nmax)
 
 
 def _damped_effectivities(modes, exact):
