@@ -662,10 +662,18 @@ def _solve_damped(mesh, full_walls, absorbing, dofs, free, K, M, air, *, count, 
         vol = float(ones @ (M @ ones))
         c00 = complex(sum(b * float(ones @ (t.B @ ones)) for b, t in zip(beta_ref, terms)) / vol)
         tau = max(math.sqrt(0.1 * lam_guess), 2.5 * abs(c00))
+        k_guess = c_kmax
+        if c_count is not None:
+            k_c = _weyl_k(mesh, c_count, fixed_area, total_area)
+            k_guess = k_c if k_guess is None else min(k_guess, k_c)
+
+        def n_below(k):
+            return _weyl_count(mesh, k, fixed_area, total_area)
+
         try:
             lin = _damped.solve_linear(pencil, beta_ref, count=c_count, kmax=c_kmax,
                                        n_estimate=c_est, tau=tau, has_static=has_static,
-                                       backend=backend)
+                                       backend=backend, spectrum=(k_guess, n_below))
         except ConvergenceError as exc:
             ks_p, X_p = exc.partial
             zero_p = np.zeros(ks_p.size, dtype=bool)

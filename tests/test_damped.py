@@ -388,6 +388,7 @@ def test_complex_beta_proxy_matches_tube_and_gmres(tube_p2, monkeypatch):
     # Re(artanh(0.2+0.1i) - artanh(0.2)) / L ~ 0.1 1/m, not by round-off
     assert first["complex_refinement"]["max_shift"] > 0.05
     monkeypatch.setattr(_damped, "COMPLEX_PATH", "gmres")
+    monkeypatch.setattr(_damped, "USE_MUMPS", False)
     old = af.solve_modes(tube_p2, walls, order=2, count=6, air=AIR)
     assert "GMRES" in old.info["windows"][0]["solver"]
     k = tube_roots(beta, 6)
@@ -411,6 +412,7 @@ def test_complex_beta_proxy_box(box_mesh, monkeypatch):
     new = af.solve_modes(box_mesh, walls, order=2, count=BOX_COUNT, air=AIR)
     assert "refinement to β" in new.info["method"]
     monkeypatch.setattr(_damped, "COMPLEX_PATH", "gmres")
+    monkeypatch.setattr(_damped, "USE_MUMPS", False)
     old = af.solve_modes(box_mesh, walls, order=2, count=BOX_COUNT, air=AIR)
     assert "GMRES" in old.info["windows"][0]["solver"]
     # same discrete problem: agreement to the solvers' accuracy (backward
@@ -451,6 +453,7 @@ def test_complex_beta_proxy_dense_spectrum(meshdir, monkeypatch):
     new = af.solve_modes(mesh, walls, order=2, count=30, air=AIR, assembly=asm)
     assert "refinement to β" in new.info["method"]
     monkeypatch.setattr(_damped, "COMPLEX_PATH", "gmres")
+    monkeypatch.setattr(_damped, "USE_MUMPS", False)
     old = af.solve_modes(mesh, walls, order=2, count=30, air=AIR, assembly=asm)
     # same discrete problem, backward errors < 1e-12: measured 1.3e-11 apart
     np.testing.assert_allclose(new.wavenumbers, old.wavenumbers, rtol=1e-8, atol=1e-9)
@@ -459,17 +462,24 @@ def test_complex_beta_proxy_dense_spectrum(meshdir, monkeypatch):
 # ---------------------------------------------------------------------------
 # 4. windows of the sparse solver vs LAPACK on the whole companion matrix
 # ---------------------------------------------------------------------------
-@pytest.mark.parametrize("path", ["proxy", "gmres"])
+@pytest.mark.parametrize("path", ["proxy", "gmres", "mumps"])
 @pytest.mark.parametrize("beta", BETAS, ids=["beta=0.05", "beta=0.2+0.1i"])
 def test_windows_match_dense_lapack(meshdir, beta, path, monkeypatch):
-    """Several shift windows (real-κ Arnoldi or complex + GMRES first, SuperLU later).
+    """Several shift windows (real-κ Arnoldi or complex first, then complex Q(σ) factors).
 
-    For complex β both paths: real-part roots refined to β, and complex
-    Arnoldi with GMRES inside every application.
+    For complex β three paths: real-part roots refined to β; complex Arnoldi
+    with GMRES inside every application (later windows SuperLU); complex
+    Arnoldi on MUMPS factors of Q(σ) in every window.  For real β: the
+    real-κ first window, later windows SuperLU or MUMPS.
     """
+    from acoustic_fem import _zsym
+
     if path == "gmres" and not isinstance(beta, complex):
-        pytest.skip("a real β has one path")
-    monkeypatch.setattr(_damped, "COMPLEX_PATH", path)
+        pytest.skip("a real β has no GMRES path")
+    if path == "mumps" and not _zsym.available():
+        pytest.skip(f"MUMPS layer: {_zsym.unavailable_reason()}")
+    monkeypatch.setattr(_damped, "COMPLEX_PATH", "gmres" if path == "mumps" else path)
+    monkeypatch.setattr(_damped, "USE_MUMPS", path == "mumps")
     mesh = af.read_mesh(meshgen.line_msh(meshdir / "tube350.msh", length=TUBE_L,
                                          h=TUBE_L / 350))
     asm = af.assemble(mesh, 1)
@@ -479,16 +489,19 @@ def test_windows_match_dense_lapack(meshdir, beta, path, monkeypatch):
     kmax = 90.0
     lin = _damped.solve_linear(pencil, np.array([beta]), count=None, kmax=kmax,
                                n_estimate=25, tau=0.6, has_static=True, max_nev=16)
-    assert len(lin.windows) >= 3  # several windows, later ones with SuperLU
+    assert len(lin.windows) >= 3  # several windows, later ones with complex factors
     first = lin.windows[0]
     if isinstance(beta, complex) and path == "gmres":
         assert "GMRES" in first["solver"] and first["gmres_worst_residual"] < 1e-9
+    elif isinstance(beta, complex) and path == "mumps":
+        assert "MUMPS" in first["solver"] and first["engine"] == "ARPACK"
     elif isinstance(beta, complex):
         assert first["engine"].startswith("ARPACK (real") and "proxy_rejected" not in first
         assert "refinement to β" in lin.method
     else:
         assert first["engine"].startswith("ARPACK (real")
-    assert any("SuperLU" in w["solver"] for w in lin.windows)
+    later = "MUMPS" if path == "mumps" else "SuperLU"
+    assert all(later in w["solver"] for w in lin.windows[1:])
     # reference: every root of the 2n companion matrix by numpy's LAPACK eig,
     # built here independently: [[0, I], [M⁻¹K, iβM⁻¹B]]
     n = asm.n_dofs
@@ -541,3 +554,70 @@ def test_convergence_error_keeps_partial(tube_p2, monkeypatch):
     partial = info.value.partial
     assert isinstance(partial, af.Modes) and len(partial) == 0
     assert "did not converge" in str(info.value)
+
+
+# ---------------------------------------------------------------------------
+# 3c. complex β with MUMPS: the first window centred in the band
+# ---------------------------------------------------------------------------
+def _needs_mumps():
+    from acoustic_fem import _zsym
+
+    if not _zsym.available():
+        pytest.skip(f"MUMPS layer: {_zsym.unavailable_reason()}")
+
+
+def test_centred_window_equals_gmres_path(box_mesh, monkeypatch):
+    """The default complex-β path (MUMPS factor of Q(s + iτ), s in the band,
+    disk reaching the origin) against the imaginary-axis window solved by
+    GMRES on the real Cholesky: the same discrete problem, so the same roots
+    to the eigensolvers' accuracy (backward errors < 1e-11, closest root pair
+    ~1 % apart: forward error < 1e-9 relative); and the disk-misses-the-origin
+    retry gives the same roots again."""
+    _needs_mumps()
+    beta = 0.03 + 0.02j
+    walls = {name: Impedance(admittance=beta) for name in box_mesh.surface_names}
+    new = af.solve_modes(box_mesh, walls, order=2, count=BOX_COUNT, air=AIR)
+    first = new.info["windows"][0]
+    assert "MUMPS" in first["solver"] and first["sigma_re"] > 0
+    assert first["radius"] > math.hypot(first["sigma_re"], first["sigma_im"])
+    monkeypatch.setattr(_damped, "USE_MUMPS", False)
+    old = af.solve_modes(box_mesh, walls, order=2, count=BOX_COUNT, air=AIR)
+    assert "GMRES" in old.info["windows"][0]["solver"]
+    np.testing.assert_allclose(new.wavenumbers, old.wavenumbers, rtol=1e-9, atol=1e-10)
+    # too few roots asked of the centred window: it must notice and retry
+    monkeypatch.setattr(_damped, "USE_MUMPS", True)
+    start = _damped._centred_start
+
+    def short(*a, **k):
+        out = start(*a, **k)
+        return None if out is None else (out[0], max(4, out[1] // 3))
+
+    monkeypatch.setattr(_damped, "_centred_start", short)
+    again = af.solve_modes(box_mesh, walls, order=2, count=BOX_COUNT, air=AIR)
+    notes = [w.get("note", "") for w in again.info["windows"]]
+    assert any("misses the origin" in n for n in notes)
+    np.testing.assert_allclose(again.wavenumbers, old.wavenumbers, rtol=1e-9, atol=1e-10)
+
+
+def test_centred_window_on_a_porous_layer_room(monkeypatch):
+    """The strongly reactive, frequency-dependent wall on which the real-part
+    proxy skipped roots: the centred MUMPS window (then the nonlinear
+    refinement) must return the same lowest roots as the imaginary-axis
+    GMRES path (whose (1,0,0)-family root tests/test_impedance.py checks
+    against a separable reference, Morse & Ingard 1968 §9.5)."""
+    _needs_mumps()
+    from acoustic_fem.verification import structured_box
+
+    mesh = structured_box((1.2, 1.0, 0.8), 3)
+    walls = {"z0": Impedance.porous_layer(1e4, 0.05)}
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        monkeypatch.setattr(_damped, "DENSE_LIMIT", 0)
+        new = af.solve_modes(mesh, walls, order=2, count=4, air=AIR)
+        monkeypatch.setattr(_damped, "USE_MUMPS", False)
+        old = af.solve_modes(mesh, walls, order=2, count=4, air=AIR)
+    assert "MUMPS" in new.info["windows"][0]["solver"] and new.info["windows"][0]["sigma_re"] > 0
+    assert "GMRES" in old.info["windows"][0]["solver"]
+    np.testing.assert_allclose(new.wavenumbers, old.wavenumbers, rtol=1e-8, atol=1e-9)
