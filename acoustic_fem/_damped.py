@@ -21,15 +21,24 @@ Shift-invert of that pencil at σ never needs the 2n matrix factorised: the
 solution of (A - σB)[u; v] = [a; b] is u = Q(σ)⁻¹(b - (iC - σM)a),
 v = a + σu, so (A - σB)⁻¹B [x; y] = [u; x + σu] with
 u = Q(σ)⁻¹(M(y + σx) - iCx): one solve with the n x n matrix Q(σ) per
-application.  ARPACK's Arnoldi (scipy ``eigs``) then finds the θ of largest
-modulus of that operator, θ = 1/(k - σ), i.e. the k nearest σ; like the
-Hermitian case in :mod:`acoustic_fem._eigen`, the ``nev`` eigenvalues
-nearest σ contain every eigenvalue closer to σ than the farthest of them.
-(A block Krylov-Schur variant with multi-right-hand-side solves was tried:
-on this non-Hermitian operator it needed 2.5-6.5x more vectors for blocks of
-4-16 than single-vector Arnoldi, and lost overall.)  For real β the first
-window works in κ = -ik, where Q = K - κC + κ²M is real: real Arnoldi,
-half the arithmetic (:func:`real_companion_operator`).
+application.  A Krylov method then finds the θ of largest modulus of that
+operator, θ = 1/(k - σ), i.e. the k nearest σ; like the Hermitian case in
+:mod:`acoustic_fem._eigen`, the ``nev`` eigenvalues nearest σ contain every
+eigenvalue closer to σ than the farthest of them.  The engine
+(``KRYLOV_ENGINE``) is the block two-level orthogonal Krylov-Schur method of
+:mod:`acoustic_fem._toar`: the bottom half of every Krylov vector is a
+combination of top halves, so the basis is kept as n-vectors (half the
+orthogonalisation traffic and memory of Arnoldi on 2n-vectors), and with a
+factor that solves two right-hand sides for the price of one (MUMPS) it
+applies the operator to blocks of two.  ARPACK (scipy ``eigs`` on the 2n
+operator) stays selectable for comparison: on the benchmark room (101 k P2
+DOFs, 30 modes, complex β) its Arnoldi took 39 s of which 14 s were its own
+work, the block engine 24 s; whole damped solves 50.0 s against 35.6 s
+(measured, bench/bench_damped.py).  For real β the first window works in
+κ = -ik, where Q = K - κC + κ²M is real: real arithmetic, half the work
+(:func:`real_companion_operator`); there blocks lost (the roots come in
+mirror pairs ±conj: 314 vectors for blocks of two against 226 single ones,
+measured), so single vectors are applied (``KRYLOV_BLOCK``).
 
 Shifts.  The first shift is σ = iτ on the positive imaginary axis.  There
 Q(iτ) = (K + τ²M - τ Re C) - iτ Im C: its real part is symmetric and, for
@@ -60,18 +69,25 @@ expected top of the wanted band, from Weyl's law or kmax), Q(σ) factorised
 by MUMPS's complex symmetric LDLᵀ (every application one exact solve), and
 nev from Weyl's count below s + |σ|.  The window is accepted only when its
 disk reaches the origin (r > |σ|, so it holds the static root and the 0 Hz
-mode; otherwise it is solved again with 1.4x the roots on the same factor);
+mode; otherwise it is continued with ~10 % more roots on the same factor,
+or with ARPACK solved again with 1.4x the roots);
 it then holds every root with Re k in [0, s + ρ], without the mirror roots
-(Re k < 0) an imaginary-axis shift finds as well -- 145-154 applications
-instead of 243 for 30 modes at 101 k P2 DOFs.  Measured there: factor 9-11 s
-(2.5x a real Cholesky of the pattern), a solve 0.16 s (3x); the damped solve
-2.9-3.2x the undamped one.  Without MUMPS, GMRES preconditioned by R needs
-~6 iterations per application (the spectrum of R⁻¹Q is 1 - iμ, μ >= 0 up
-to ~Im(∫β)/(V τ) for smooth vectors: not clustered enough for 1-2), each a
-CHOLMOD solve: 18x the undamped solve at 101 k DOFs.  (Tried and set aside:
-MUMPS at σ = iτ with 243 applications, 5.8x; block Arnoldi with 4-16-column
-MUMPS solves, cheap per column, but its larger basis and orthogonalisation
-cost more than they saved.)
+(Re k < 0) an imaginary-axis shift finds as well -- 145-154 ARPACK
+applications instead of 243 for 30 modes at 101 k P2 DOFs.  Measured there:
+factor 7.7 s (analysis 1.8 s + factorisation 5.8 s; 4.5x CHOLMOD's real
+Cholesky of the pattern, which has 44.6 M entries against MUMPS's 45.3 M), a
+solve of one or two columns 0.16 s (3x CHOLMOD's one column); with the block
+engine 95 blocks of two, the damped solve 2.3-2.4x the undamped one (ARPACK:
+3.2-3.4x).  Nev comes from Weyl's count with a small margin: a window that
+misses the origin or holds too few roots below its cut is continued on the
+same factor with a few more roots (the engine keeps its Krylov basis).
+Without MUMPS, GMRES preconditioned by R needs ~6 iterations per
+application (the spectrum of R⁻¹Q is 1 - iμ, μ >= 0 up to ~Im(∫β)/(V τ)
+for smooth vectors: not clustered enough for 1-2), each a CHOLMOD solve:
+18x the undamped solve at 101 k DOFs.  (Tried and set aside: MUMPS at
+σ = iτ with 243 applications, 5.8x; blocks of 4-16 columns, which need
+1.4-2x the vectors of blocks of two for no faster solves per block, and
+on 2n-vectors an orthogonalisation that cost more than the blocks saved.)
 The opt-in path (``COMPLEX_PATH = "proxy"``; the default stays "gmres", see
 the note at COMPLEX_PATH) instead solves the
 *real-part problem* (β replaced by Re β: real Arnoldi on the same factor R,
@@ -154,7 +170,7 @@ RESIDUAL_TOL = 1e-8
 REFINE_TOL = 1e-10
 #: up to this many unknowns the 2n companion pencil is solved densely (LAPACK)
 DENSE_LIMIT = 300
-#: largest number of roots asked of one ARPACK window (memory: 2n x (2 nev + 1) complex)
+#: largest number of roots asked of one window (memory: n x (2 nev + ~6) complex)
 MAX_WINDOW_NEV = 240
 #: relative accuracy of the GMRES solves with Q(iτ) when Im β != 0 (the eigenpairs are
 #: then checked against RESIDUAL_TOL on the true quadratic problem)
@@ -169,10 +185,23 @@ GMRES_TOL = 1e-10
 COMPLEX_PATH = "gmres"
 #: target backward error of the refinement from Re β to β
 PROXY_TOL = 1e-12
+#: the Krylov engine of the sparse windows (read at call time): "toar", the block
+#: two-level orthogonal Krylov-Schur method of :mod:`acoustic_fem._toar` (default),
+#: or "arpack" (scipy ``eigs`` on the 2n companion operator, kept for comparison)
+KRYLOV_ENGINE = "toar"
+#: vectors per application of the "toar" engine, by the factor that solves
+#: Q(σ): a block costs about one solve where the factor is read once per block
+#: (measured at 101 k P2 DOFs: MUMPS 2 columns 1.0x one column, 4 columns 1.27x,
+#: blocks of 2-4 equally fast overall).  CHOLMOD serves the real κ form, whose
+#: mirror-paired roots made blocks need 40-110 % more vectors (26 s for single
+#: vectors, 29-31 s for blocks of 2-4); GMRES and SuperLU solve column by
+#: column: single vectors for all three
+KRYLOV_BLOCK = {"mumps": 2}
 #: ARPACK's basis size ncv = NCV_FACTOR nev + 1 (at least nev + 20)
 NCV_FACTOR = 2.0
-#: BLAS threads of the NumPy/SciPy wheels' OpenBLAS while ARPACK runs on a large
-#: problem (read at call time; None leaves them alone)
+#: BLAS threads of the NumPy/SciPy wheels' OpenBLAS while a Krylov engine runs on a
+#: large problem (read at call time; None leaves them alone; 2 threads made the
+#: factor's solves 40 % slower, measured)
 ARPACK_BLAS_THREADS = 1
 #: the centred first window (complex β with MUMPS) is centred at CENTRE_REACH k_guess / 2
 CENTRE_REACH = 1.0
@@ -456,6 +485,46 @@ def real_companion_operator(pencil: Pencil, C, tau: float, fsolve):
     return apply, count
 
 
+def companion_block_solve(pencil: Pencil, C, sigma: complex, solver: ShiftSolver):
+    """The top half L(x, y) = Q(σ)⁻¹(M(y + σx) - iCx) of :func:`companion_operator`.
+
+    For the TOAR engine (:mod:`._toar`), whose operator is
+    [x; y] -> [L(x, y); x + σ L(x, y)].  Blocks: X, Y (n, b) -> (n, b) complex.
+    """
+    M = pencil.M
+    iC = (1j * C).tocsr()
+
+    def apply_u(X, Y):
+        return np.asarray(solver.solve(_real_times_complex(M, Y + sigma * X) - iC @ X)
+                          ).reshape(X.shape)
+
+    return apply_u
+
+
+def _real_times_complex(A, Z):
+    """A @ Z for a real sparse A and a complex (n, b) Z, on Z's real view.
+
+    Reads A once for the real and imaginary parts together (2b real columns):
+    half the memory traffic of a complex copy of A (measured 2x faster).
+    """
+    Z = np.ascontiguousarray(Z, dtype=complex)
+    return np.ascontiguousarray(A @ Z.view(np.float64)).view(complex)
+
+
+def real_companion_block_solve(pencil: Pencil, C, tau: float, fsolve):
+    """The top half L(x, y) = P(τ)⁻¹((C - τM)x - My) of :func:`real_companion_operator`.
+
+    Real blocks X, Y (n, b) -> (n, b); the operator is [x; y] -> [u; x + τu].
+    """
+    M = pencil.M
+    CtM = (sp.csr_matrix(C.real) - tau * M).tocsr()
+
+    def apply_u(X, Y):
+        return np.asarray(fsolve(CtM @ X - M @ Y)).reshape(X.shape)
+
+    return apply_u
+
+
 # ---------------------------------------------------------------------------
 # root classification and normalisation
 # ---------------------------------------------------------------------------
@@ -559,10 +628,8 @@ def _arnoldi(apply, n2, nev, tol, to_k, dtype):
     # took the cores from the sparse factor's solves (CHOLMOD, MUMPS: the
     # system OpenBLAS), which then ran at half speed: those wheels' BLAS is
     # held to one thread throughout (ARPACK_BLAS_THREADS), the factor's keeps its own.
-    limits = ({"blas": 1} if n2 * ncv < 4_000_000
-              else {"libscipy_openblas": ARPACK_BLAS_THREADS})
     try:
-        with threadpool_limits(limits=limits):
+        with threadpool_limits(limits=_blas_limits(n2, ncv)):
             theta, Z = spla.eigs(op, k=nev, which="LM", v0=v0, ncv=ncv, tol=tol)
     except spla.ArpackNoConvergence as exc:
         th = np.asarray(exc.eigenvalues)
@@ -574,6 +641,28 @@ class _WindowFailed(Exception):
     def __init__(self, ks, Z, nev):
         super().__init__("ARPACK did not converge")
         self.ks, self.Z, self.nev = ks, Z, nev
+
+
+def _blas_limits(n2, ncv):
+    """BLAS thread limits while a Krylov engine runs (see :func:`_arnoldi`)."""
+    return ({"blas": 1} if n2 * ncv < 4_000_000
+            else {"libscipy_openblas": ARPACK_BLAS_THREADS})
+
+
+def _toar(engine, nev, tol, to_k):
+    """Roots nearest the shift by the block TOAR Krylov-Schur engine (:mod:`._toar`).
+
+    engine : CompanionKrylovSchur (continued if it ran before).  Returns (ks, X (n, nev)).
+    """
+    from ._toar import KrylovNotConverged
+
+    ncv = max(2 * nev + engine.b, nev + 20)
+    try:
+        with threadpool_limits(limits=_blas_limits(2 * engine.n, ncv)):
+            theta, X = engine.run(nev, ncv=ncv, tol=tol)
+    except KrylovNotConverged as exc:
+        raise _WindowFailed(to_k(exc.theta), exc.X, nev) from None
+    return to_k(theta), X
 
 
 def _m_orthonormal(W, M, drop=1e-12):
@@ -655,6 +744,7 @@ def refine_frozen(pencil: Pencil, beta, ks, X, precondition, *, tol, zero=None,
     done = np.zeros(m, dtype=bool)
     wanted = np.ones(m, dtype=bool)
     Y = None
+    p_new = 0  # columns the last expansion added to the basis
     for outer in range(max_outer + 1):
         CV = 0.5 * (CrV + CrV.T) + 0.5j * (CiV + CiV.T)
         with threadpool_limits(1, user_api="blas"):  # small dense problem
@@ -846,14 +936,14 @@ def solve_linear(pencil: Pencil, beta, *, count, kmax, n_estimate, tau, has_stat
                                 solver="dense"))
         res.first_solver = _dense_solver(pencil, C, tau)
     else:
-        res.method = "companion shift-invert (ARPACK)"
+        res.method = f"companion shift-invert ({_engine_name()})"
         out = None
         if np.any(C.data.imag) and COMPLEX_PATH == "proxy":
             out = _proxy_windows(pencil, beta, count, kmax, n_estimate, tau, has_static,
                                  backend, max_nev, tol, res)
             if out is not None:
-                res.method = ("companion shift-invert (ARPACK) at Re β + nonlinear-Arnoldi "
-                              "refinement to β")
+                res.method = (f"companion shift-invert ({_engine_name()}) at Re β + "
+                              "nonlinear-Arnoldi refinement to β")
         if out is None:
             tried = res.windows
             res.windows = []
@@ -909,11 +999,36 @@ def _centred_start(pencil, C, want, has_static, tau, spectrum, backend, cap):
         return None
     s = 0.5 * CENTRE_REACH * k_guess
     r0 = math.hypot(s, tau)
-    nev = int(math.ceil(1.1 * n_below(s + r0))) + 4 + (2 if has_static else 0)
-    nev = max(nev, want + 6)
+    if KRYLOV_ENGINE == "arpack":  # a retry starts again: a wide margin
+        nev = int(math.ceil(1.1 * n_below(s + r0))) + 4 + (2 if has_static else 0)
+        nev = max(nev, want + 6)
+    else:  # the engine continues when more roots are needed: a small margin
+        nev = int(math.ceil(n_below(s + r0))) + 2 + (2 if has_static else 0)
+        nev = max(nev, want + 2 + (2 if has_static else 0))
     if nev > cap:
         return None
     return s, nev
+
+
+def _engine_name() -> str:
+    return "ARPACK" if KRYLOV_ENGINE == "arpack" else "block TOAR Krylov-Schur"
+
+
+def _more_roots(nev: int, engine) -> int:
+    """nev for a retry of the first window: a continued engine needs only a few more."""
+    if engine is not None:
+        return nev + max(4, math.ceil(0.1 * nev))
+    return math.ceil(1.4 * nev)  # ARPACK starts again: a wide step
+
+
+def _block_size(solver: ShiftSolver, n2: int, nev: int) -> int:
+    """Vectors per application of the TOAR engine for this solver (KRYLOV_BLOCK)."""
+    if "GMRES" in solver.method:
+        return 1  # GMRES solves column by column
+    b = int(KRYLOV_BLOCK.get(solver.backend, 1))
+    while b > 1 and nev > n2 - 2 * b - 2:  # tiny problems: room for the blocks
+        b //= 2
+    return max(b, 1)
 
 
 def _windows(pencil, C, count, kmax, n_estimate, tau, has_static, backend, max_nev, tol, res,
@@ -927,6 +1042,7 @@ def _windows(pencil, C, count, kmax, n_estimate, tau, has_static, backend, max_n
     start = _centred_start(pencil, C, want, has_static, tau, spectrum, backend, cap)
     if start is not None:
         s, nev = start
+    nev_first = nev
     first = True
     lower = -math.inf
     acc_k, acc_X, acc_z = [], [], []
@@ -934,32 +1050,59 @@ def _windows(pencil, C, count, kmax, n_estimate, tau, has_static, backend, max_n
     scale = max(tau, 1e-300)
     real_c = not np.any(C.data.imag)
     solver = None
+    engine = None  # the Krylov engine on the current factor (continued when it is reused)
     for _attempt in range(200):
         sigma = complex(s, tau)
         if first and solver is not None:
-            pass  # the centred first window again, with more roots: same factor
-        elif first and s > 0.0:
-            solver = mumps_shift_solver(pencil, C, sigma)
-            res.first_solver = solver
-        elif first:
-            if not real_c and use_mumps(backend):
+            pass  # the first window again, with more roots: same factor, same engine
+        else:
+            engine = None
+            if first and s > 0.0:
+                solver = mumps_shift_solver(pencil, C, sigma)
+                res.first_solver = solver
+            elif first:
+                if not real_c and use_mumps(backend):
+                    solver = mumps_shift_solver(pencil, C, sigma)
+                else:
+                    solver = imaginary_shift_solver(pencil, C, tau, backend)
+                res.first_solver = solver
+            elif use_mumps(backend):
                 solver = mumps_shift_solver(pencil, C, sigma)
             else:
-                solver = imaginary_shift_solver(pencil, C, tau, backend)
-            res.first_solver = solver
-        elif use_mumps(backend):
-            solver = mumps_shift_solver(pencil, C, sigma)
+                solver = general_shift_solver(pencil, C, sigma)
+        real_form = first and s == 0.0 and real_c  # real β: κ = -ik, real arithmetic
+        if real_form:
+            to_k = (lambda th: 1j * (tau + 1.0 / th))
         else:
-            solver = general_shift_solver(pencil, C, sigma)
-        if first and s == 0.0 and real_c:
-            # real β: the κ = -ik form in real arithmetic (same factor)
-            apply, napp = real_companion_operator(pencil, C, tau, solver.real_solve)
-            to_k, dtype, used = (lambda th: 1j * (tau + 1.0 / th)), float, "ARPACK (real, κ = -ik)"
-        else:
-            apply, napp = companion_operator(pencil, C, sigma, solver)
-            to_k, dtype, used = (lambda th, sg=sigma: sg + 1.0 / th), complex, "ARPACK"
+            to_k = (lambda th, sg=sigma: sg + 1.0 / th)
         try:
-            ks, Z = _arnoldi(apply, n2, nev, tol, to_k, dtype)
+            if KRYLOV_ENGINE == "arpack":
+                if real_form:
+                    apply, napp = real_companion_operator(pencil, C, tau, solver.real_solve)
+                    dtype, used = float, "ARPACK (real, κ = -ik)"
+                else:
+                    apply, napp = companion_operator(pencil, C, sigma, solver)
+                    dtype, used = complex, "ARPACK"
+                ks, Z = _arnoldi(apply, n2, nev, tol, to_k, dtype)
+                X = Z[:n]
+                applied = dict(applications=int(napp[0]))
+            else:
+                if engine is None:
+                    from ._toar import CompanionKrylovSchur
+
+                    if real_form:
+                        apply_u = real_companion_block_solve(pencil, C, tau, solver.real_solve)
+                        engine = CompanionKrylovSchur(apply_u, n, tau, dtype=float,
+                                                      block=_block_size(solver, n2, nev))
+                    else:
+                        apply_u = companion_block_solve(pencil, C, sigma, solver)
+                        engine = CompanionKrylovSchur(apply_u, n, sigma, dtype=complex,
+                                                      block=_block_size(solver, n2, nev))
+                used = (f"block TOAR Krylov-Schur (b = {engine.b}"
+                        + (", real, κ = -ik)" if real_form else ")"))
+                ks, X = _toar(engine, nev, tol, to_k)
+                applied = dict(applications=int(engine.applications), blocks=int(engine.blocks),
+                               restarts=int(engine.restarts), basis_rank=int(engine.max_rank))
         except _WindowFailed as exc:
             part_k = np.concatenate(acc_k) if acc_k else np.zeros(0, complex)
             part_X = np.hstack(acc_X) if acc_X else np.zeros((n, 0), complex)
@@ -969,13 +1112,11 @@ def _windows(pencil, C, count, kmax, n_estimate, tau, has_static, backend, max_n
                 "modes or refine the mesh.",
                 partial=(part_k, part_X),
             ) from None
-        X = Z[:n]
         scale = max(scale, float(np.abs(ks).max()))
         r = float(np.abs(ks - sigma).max())
         rho = math.sqrt(max(r * r - tau * tau, 0.0))
         win = dict(sigma_re=float(s), sigma_im=float(tau), nev=int(nev), radius=r,
-                   solver=solver.method, backend=solver.backend, engine=used,
-                   applications=int(napp[0]))
+                   solver=solver.method, backend=solver.backend, engine=used, **applied)
         if solver.gmres_iterations:
             win["gmres_worst_residual"] = float(solver.gmres_worst)
             win["gmres_iterations"] = int(solver.gmres_iterations)
@@ -987,7 +1128,7 @@ def _windows(pencil, C, count, kmax, n_estimate, tau, has_static, backend, max_n
                 raise SolverError(
                     f"the damped eigensolver's first window around σ = {sigma:.6g} 1/m did "
                     f"not reach the origin with {nev} roots; ask for fewer modes.")
-            nev = int(min(math.ceil(1.4 * nev), cap))
+            nev = int(min(_more_roots(nev, engine), cap))
             continue
         if not first and s - rho > lower + CLUSTER_RTOL * scale:
             win.update(accepted=0, note="gap, retried")
@@ -1003,6 +1144,17 @@ def _windows(pencil, C, count, kmax, n_estimate, tau, has_static, backend, max_n
         cand = np.flatnonzero(keep & (key >= lower))
         cut, inside = _cut(key[cand], s + rho, scale)
         take = cand[inside]
+        short = ((count is not None and total + take.size < count)
+                 or (count is None and kmax is not None and cut <= kmax))
+        if (first and s > 0.0 and short and engine is not None and nev < cap
+                and nev < 1.5 * nev_first):
+            # the centred window holds too few roots below its cut: the engine
+            # continues on the same factor (only the extra Krylov steps are paid)
+            win.update(accepted=0, note="too few roots below the cut, continued with more")
+            res.windows.append(win)
+            deficit = (count - total - take.size) if count is not None else 0
+            nev = int(min(max(_more_roots(nev, engine), nev + deficit + 2), cap))
+            continue
         acc_k.append(ks[take])
         acc_X.append(X[:, take])
         acc_z.append(zero[take])

@@ -383,7 +383,7 @@ def test_complex_beta_proxy_matches_tube_and_gmres(tube_p2, monkeypatch):
     new = af.solve_modes(tube_p2, walls, order=2, count=6, air=AIR)
     first = new.info["windows"][0]
     assert "refinement to β" in new.info["method"]
-    assert first["engine"].startswith("ARPACK (real") and first["complex_refinement"]["accepted"]
+    assert "real, κ = -ik" in first["engine"] and first["complex_refinement"]["accepted"]
     # the refinement moved the roots: Im β = 0.1 shifts each root by
     # Re(artanh(0.2+0.1i) - artanh(0.2)) / L ~ 0.1 1/m, not by round-off
     assert first["complex_refinement"]["max_shift"] > 0.05
@@ -462,15 +462,17 @@ def test_complex_beta_proxy_dense_spectrum(meshdir, monkeypatch):
 # ---------------------------------------------------------------------------
 # 4. windows of the sparse solver vs LAPACK on the whole companion matrix
 # ---------------------------------------------------------------------------
+@pytest.mark.parametrize("engine", ["toar", "arpack"])
 @pytest.mark.parametrize("path", ["proxy", "gmres", "mumps"])
 @pytest.mark.parametrize("beta", BETAS, ids=["beta=0.05", "beta=0.2+0.1i"])
-def test_windows_match_dense_lapack(meshdir, beta, path, monkeypatch):
-    """Several shift windows (real-κ Arnoldi or complex first, then complex Q(σ) factors).
+def test_windows_match_dense_lapack(meshdir, beta, path, engine, monkeypatch):
+    """Several shift windows (real-κ Krylov or complex first, then complex Q(σ) factors).
 
-    For complex β three paths: real-part roots refined to β; complex Arnoldi
+    For complex β three paths: real-part roots refined to β; complex Krylov
     with GMRES inside every application (later windows SuperLU); complex
-    Arnoldi on MUMPS factors of Q(σ) in every window.  For real β: the
-    real-κ first window, later windows SuperLU or MUMPS.
+    Krylov on MUMPS factors of Q(σ) in every window.  For real β: the
+    real-κ first window, later windows SuperLU or MUMPS.  Each with both
+    Krylov engines: the block TOAR Krylov-Schur default and ARPACK.
     """
     from acoustic_fem import _zsym
 
@@ -478,6 +480,7 @@ def test_windows_match_dense_lapack(meshdir, beta, path, monkeypatch):
         pytest.skip("a real β has no GMRES path")
     if path == "mumps" and not _zsym.available():
         pytest.skip(f"MUMPS layer: {_zsym.unavailable_reason()}")
+    monkeypatch.setattr(_damped, "KRYLOV_ENGINE", engine)
     monkeypatch.setattr(_damped, "COMPLEX_PATH", "gmres" if path == "mumps" else path)
     monkeypatch.setattr(_damped, "USE_MUMPS", path == "mumps")
     mesh = af.read_mesh(meshgen.line_msh(meshdir / "tube350.msh", length=TUBE_L,
@@ -494,14 +497,16 @@ def test_windows_match_dense_lapack(meshdir, beta, path, monkeypatch):
     if isinstance(beta, complex) and path == "gmres":
         assert "GMRES" in first["solver"] and first["gmres_worst_residual"] < 1e-9
     elif isinstance(beta, complex) and path == "mumps":
-        assert "MUMPS" in first["solver"] and first["engine"] == "ARPACK"
+        assert "MUMPS" in first["solver"] and "real" not in first["engine"]
     elif isinstance(beta, complex):
-        assert first["engine"].startswith("ARPACK (real") and "proxy_rejected" not in first
+        assert "real, κ = -ik" in first["engine"] and "proxy_rejected" not in first
         assert "refinement to β" in lin.method
     else:
-        assert first["engine"].startswith("ARPACK (real")
+        assert "real, κ = -ik" in first["engine"]
     later = "MUMPS" if path == "mumps" else "SuperLU"
     assert all(later in w["solver"] for w in lin.windows[1:])
+    assert all(w["engine"].startswith("ARPACK" if engine == "arpack" else "block TOAR")
+               for w in lin.windows)
     # reference: every root of the 2n companion matrix by numpy's LAPACK eig,
     # built here independently: [[0, I], [M⁻¹K, iβM⁻¹B]]
     n = asm.n_dofs
@@ -519,6 +524,42 @@ def test_windows_match_dense_lapack(meshdir, beta, path, monkeypatch):
     assert lin.ks.size == w.size
     # LAPACK's eigenvalues are accurate to ~eps ‖A‖ / |gap| ~ 1e-9 here
     np.testing.assert_allclose(lin.ks, w, atol=1e-8 * kmax)
+
+
+@pytest.mark.parametrize("engine", ["toar", "arpack"])
+@pytest.mark.parametrize("beta", [0.05, 0.05 + 0.03j], ids=["real", "complex"])
+def test_symmetric_cube_degenerate_roots(beta, engine, monkeypatch):
+    """Exactly degenerate damped roots: a cube meshed symmetrically.
+
+    The Kuhn mesh (6 tetrahedra per cell around the main diagonal) is
+    invariant under permutations of the axes, and so is a uniform admittance
+    on all faces: the discrete problem then has exactly double roots (the
+    2-dimensional representation of the permutation group; e.g. the rigid
+    cube's triple (1,0,0) splits into a single and a double -- derived from
+    the symmetry, and seen below in the reference).  The sparse path (first
+    window real κ with single vectors, or complex with blocks of two) must
+    find every copy: compared with LAPACK on the whole companion matrix
+    (the dense path), to the solvers' accuracy.
+    """
+    from acoustic_fem.verification import structured_box
+
+    mesh = structured_box((1.0, 1.0, 1.0), 7)  # 512 P1 DOFs: LAPACK on 1024 in ~2 s
+    walls = {name: Impedance(admittance=beta) for name in mesh.surface_names}
+    monkeypatch.setattr(_damped, "DENSE_LIMIT", 10**4)
+    ref = af.solve_modes(mesh, walls, order=1, count=25, air=AIR)
+    assert ref.info["method"].startswith("dense")
+    # the reference has exact double roots (to round-off): the test's point
+    k = ref.wavenumbers
+    gaps = np.abs(np.diff(k)) / np.abs(k[1])
+    assert np.count_nonzero(gaps < 1e-10) >= 5
+    monkeypatch.setattr(_damped, "DENSE_LIMIT", 0)
+    monkeypatch.setattr(_damped, "KRYLOV_ENGINE", engine)
+    got = af.solve_modes(mesh, walls, order=1, count=25, air=AIR)
+    assert "companion shift-invert" in got.info["method"]
+    # backward errors ~1e-15 on both sides; LAPACK's roots of a 1024 x 1024
+    # companion matrix are accurate to ~eps ‖A‖/|k| ~ 1e-11 relative (measured
+    # 1e-12 apart): 1e-9 of the first nonzero root
+    np.testing.assert_allclose(got.wavenumbers, ref.wavenumbers, rtol=0, atol=1e-9 * abs(k[1]))
 
 
 # ---------------------------------------------------------------------------
