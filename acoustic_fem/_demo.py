@@ -107,10 +107,11 @@ element_order = 2                  # 1 (linear) or 2 (quadratic, recommended)
 
 # ---------------------------------------------------------------- solver
 [solver]
-# how absorbing surfaces enter the modes: "perturbation" (rigid-wall modes with
-# first-order decay rates and frequency shifts: fast, accurate while the walls
-# absorb little) or "exact" (the full quadratic eigenproblem: slower)
-damping = "perturbation"
+# how absorbing surfaces enter the modes: "exact" (the full quadratic
+# eigenproblem with each wall evaluated at the mode's own frequency: the
+# default) or "perturbation" (rigid-wall modes with first-order decay rates and
+# frequency shifts: faster, accurate only while the walls absorb little)
+damping = "exact"
 # how the frequency sweep is solved: "modal" (a reduced model checked against
 # the full system's residual: fast) or "direct" (one sparse solve per frequency)
 response_method = "modal"
