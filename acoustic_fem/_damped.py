@@ -168,6 +168,14 @@ from ._linalg import factorize
 RESIDUAL_TOL = 1e-8
 #: target backward error of the refinement on frequency-dependent walls
 REFINE_TOL = 1e-10
+#: Ritz tolerance of the frozen-β solve that starts the refinement on frequency-
+#: dependent walls (instead of 1e-12): its roots move by O(Δβ) afterwards; 1e-8
+#: still places every root to ~1e-8 relative for the windows' bookkeeping
+FROZEN_TOL = 1e-8
+#: ... of the candidates refined past the wanted band (only ordered against it: a
+#: backward error of 1e-8 places a root to ~1e-8 relative, the acceptance level of
+#: RESIDUAL_TOL); they converge last, so this saves outer steps
+MARGIN_TOL = 1e-8
 #: up to this many unknowns the 2n companion pencil is solved densely (LAPACK)
 DENSE_LIMIT = 300
 #: largest number of roots asked of one window (memory: n x (2 nev + ~6) complex)
@@ -242,6 +250,12 @@ class Pencil:
         self.norm_M = float(abs(self.M).sum(axis=1).max())
         self.norm_B = np.array([float(abs(t.B).sum(axis=1).max()) if t.B.nnz else 0.0
                                 for t in self.terms])
+        # each wall's boundary mass lives on its own DOFs: (rows, B restricted to them)
+        self.wall_blocks = []
+        for t in self.terms:
+            B = sp.csr_matrix(t.B)
+            rows = np.flatnonzero(np.diff(B.indptr))
+            self.wall_blocks.append((rows, B[rows][:, rows].tocsr()))
 
     @property
     def frequency_dependent(self) -> bool:
@@ -278,10 +292,25 @@ class Pencil:
         ks = np.asarray(ks)
         if ks.size == 0:
             return np.zeros(0)
-        R = self.K @ X - (self.M @ X) * ks**2
+        return self.backward_errors(ks, X, betas, self.apply(ks, X, betas))
+
+    def apply(self, ks, X, betas) -> np.ndarray:
+        """(n, m) residual vectors Q(k_j) x_j = Kx - k²Mx + ik Σ β_s B_s x (complex).
+
+        The real matrices act on the real views of X (:func:`_real_times_complex`).
+        """
+        ks = np.asarray(ks)
+        X = np.asarray(X, dtype=complex)
+        R = _real_times_complex(self.K, X) - _real_times_complex(self.M, X) * ks**2
+        for (rows, Bw), b in zip(self.wall_blocks, betas):
+            R[rows] += _real_times_complex(Bw, X[rows]) * (1j * ks * b)
+        return R
+
+    def backward_errors(self, ks, X, betas, R) -> np.ndarray:
+        """(m,) backward errors (see :meth:`residuals`) from the residual vectors R (n, m)."""
+        ks = np.asarray(ks)
         normC = np.zeros(ks.size)
-        for t, b, nb in zip(self.terms, betas, self.norm_B):
-            R = R + (t.B @ X) * (1j * ks * b)
+        for b, nb in zip(betas, self.norm_B):
             normC += np.abs(b) * nb
         ak = np.abs(ks)
         scale = (self.norm_K + ak * normC + ak**2 * self.norm_M) * np.abs(X).max(axis=0)
@@ -1195,35 +1224,92 @@ def _windows(pencil, C, count, kmax, n_estimate, tau, has_static, backend, max_n
 # ---------------------------------------------------------------------------
 # nonlinear refinement (frequency-dependent walls)
 # ---------------------------------------------------------------------------
+def _dense_real_times_complex(A, Z):
+    """A @ Z for a real dense A (a, b) and a complex Z (b, m), reading A once.
+
+    NumPy would first copy A to complex (for a basis of n x p: n p complex
+    numbers per product); the real view of Z (b, 2m) avoids it.
+    """
+    Z = np.ascontiguousarray(Z, dtype=complex)
+    return np.ascontiguousarray(A @ Z.view(np.float64)).view(complex)
+
+
+class _Blocks:
+    """A real (n, p) matrix kept as a list of column blocks, appended without copying.
+
+    The refinement's basis grows by a block per outer step; a contiguous array
+    would be copied (or over-allocated) as it grows, which cost as much memory
+    as the basis itself at its peak.  Products run block by block.
+    """
+
+    def __init__(self, *blocks):
+        self.blocks = [b for b in blocks if b.shape[1]]
+
+    @property
+    def p(self) -> int:
+        return sum(b.shape[1] for b in self.blocks)
+
+    def append(self, W):
+        if W.shape[1]:
+            self.blocks.append(np.asfortranarray(W))
+
+    def dot(self, Cf):
+        """V @ Cf for Cf (p, q), real or complex (complex via its real view)."""
+        cplx = np.iscomplexobj(Cf)
+        out = None
+        j = 0
+        for b in self.blocks:
+            c = Cf[j:j + b.shape[1]]
+            part = _dense_real_times_complex(b, c) if cplx else b @ c
+            out = part if out is None else out + part
+            j += b.shape[1]
+        return out
+
+    def tdot(self, W):
+        """V.T @ W for W (n, q), real or complex: (p, q)."""
+        cplx = np.iscomplexobj(W)
+        return np.vstack([_dense_real_times_complex(b.T, W) if cplx else b.T @ W
+                          for b in self.blocks])
+
+    def rows(self, idx):
+        """V[idx] (len(idx), p)."""
+        return np.hstack([b[idx] for b in self.blocks])
+
+
 def _m_orth_extend(V, MV, W, M, drop=1e-10):
-    """Append the M-orthonormalised part of the real columns W to the basis V."""
+    """The M-orthonormalised part of the real columns W against the M-orthonormal V.
+
+    V, MV : _Blocks (n, p) (MV = M V, kept with the basis so that projections
+    need no sparse product) or None; W (n, q).  Returns (Wn, MWn) (n, q'),
+    q' <= q: M-orthonormal, M-orthogonal to V (CGS twice, then the Gram
+    matrix's eigenvectors drop dependent directions, and a Cholesky step).
+    """
+    has_v = V is not None and V.p > 0
     for _ in range(2):
-        if V is not None and V.shape[1]:
-            W = W - V @ (MV.T @ W)
+        if has_v:
+            W = W - V.dot(MV.tdot(W))
     MW = M @ W
     G = W.T @ MW
     G = 0.5 * (G + G.T)
     w, U = np.linalg.eigh(G)
     if w.size == 0 or w.max() <= 0:
-        return V, MV, 0
+        return W[:, :0], MW[:, :0]
     keep = w > drop * max(w.max(), 1e-300)
-    if V is not None and V.shape[1]:
+    if has_v:
         # relative to the basis: a new direction must not be mostly round-off
         ref = np.linalg.norm(W, axis=0).max() ** 2
         keep &= w > 1e-20 * max(ref, 1e-300)
     T = U[:, keep] / np.sqrt(w[keep])
     Wn, MWn = W @ T, MW @ T
-    # one more pass for orthogonality to V and within the block
-    if V is not None and V.shape[1]:
-        Wn = Wn - V @ (MV.T @ Wn)
+    # scaling weak directions up also scales up what is left of V in them: one
+    # more pass when that could matter (weakest kept below 1e-6 of the strongest)
+    if has_v and w[keep].min() < 1e-6 * w.max():
+        Wn = Wn - V.dot(MV.tdot(Wn))
         MWn = M @ Wn
     G = Wn.T @ MWn
     L = np.linalg.cholesky(0.5 * (G + G.T))
-    Li = sla.solve_triangular(L, np.eye(L.shape[0]), lower=True)
-    Wn, MWn = Wn @ Li.T, MWn @ Li.T
-    if V is None:
-        return Wn, MWn, Wn.shape[1]
-    return np.hstack([V, Wn]), np.hstack([MV, MWn]), Wn.shape[1]
+    Li = sla.solve_triangular(L, np.eye(L.shape[0]), lower=True)  # small: one gemm each below
+    return Wn @ Li.T, MWn @ Li.T
 
 
 def _small_qep(A, C):
@@ -1328,7 +1414,8 @@ def _projected(KV, BV, pencil, ks, Y, todo, tol=1e-13, max_it=40):
     return its
 
 
-def refine_nonlinear(pencil: Pencil, ks, X, precondition, *, tol=REFINE_TOL, max_outer=40):
+def refine_nonlinear(pencil: Pencil, ks, X, precondition, *, tol=REFINE_TOL, max_outer=40,
+                     count=None, fmax=None):
     """Refine eigenpairs of the frozen-β problem on T(k) = K + ik C(f(k)) - k² M.
 
     Parameters
@@ -1337,6 +1424,12 @@ def refine_nonlinear(pencil: Pencil, ks, X, precondition, *, tol=REFINE_TOL, max
     ks : (m,) complex, X : (n, m) complex -- starting eigenpairs
     precondition : callable, complex (n, j) -> (n, j), a real preconditioner
     tol : backward-error target
+    count, fmax : the selection the caller makes afterwards (the lowest ``count``
+        by frequency, or every mode with f <= fmax Hz; None: all).  Only the
+        selected modes are driven to ``tol``; the candidates past it (a margin,
+        refined because the wall moves modes across the band's edge) only to
+        MARGIN_TOL, enough to order them -- and become selected, and strict,
+        when they move into the band.
 
     Returns
     -------
@@ -1346,50 +1439,69 @@ def refine_nonlinear(pencil: Pencil, ks, X, precondition, *, tol=REFINE_TOL, max
     K, M = pencil.K, pencil.M
     m = ks.size
     ks = np.array(ks, dtype=complex)
-    V, MV, _ = _m_orth_extend(None, None, np.hstack([X.real, X.imag]), M)
-    KV = V.T @ (K @ V)
-    BV = [V.T @ (t.B @ V) for t in pencil.terms]
-    Y = MV.T @ X
+    X = np.asarray(X, dtype=complex)
+    W0, MW0 = _m_orth_extend(None, None, np.hstack([X.real, X.imag]), M)
+    V, MV = _Blocks(W0), _Blocks(MW0)
+    KV = W0.T @ (K @ W0)
+    BV = [W0[rows].T @ (Bw @ W0[rows]) for rows, Bw in pencil.wall_blocks]
+    Y = MV.tdot(X)
     conv = np.zeros(m, dtype=bool)
     inner = np.zeros(m, dtype=int)
     outer_at = np.full(m, -1)
     rel = np.full(m, np.inf)
     outer = 0
+
+    def tolerances():
+        """Per-mode targets: ``tol`` for the selection, MARGIN_TOL past it."""
+        f = pencil.frequency(ks)
+        rank = np.empty(m, dtype=int)
+        rank[np.argsort(f, kind="stable")] = np.arange(m)
+        sel = np.ones(m, dtype=bool)
+        if count is not None:
+            sel &= rank < count
+        if fmax is not None:
+            sel &= f <= fmax
+        return np.where(sel, tol, max(tol, MARGIN_TOL))
+
     for outer in range(1, max_outer + 1):
         todo = np.flatnonzero(~conv)
         with threadpool_limits(1, user_api="blas"):  # small dense problems (p <= a few 100)
             inner += _projected(0.5 * (KV + KV.T), [0.5 * (b + b.T) for b in BV], pencil, ks,
                                 Y, todo)
-        Xt = V @ Y[:, todo]
-        betas = pencil.betas(pencil.frequency(ks[todo]))
-        r = pencil.residuals(ks[todo], Xt, betas)
-        rel[todo] = r
-        newly = todo[r < tol]
-        conv[newly] = True
-        outer_at[newly] = outer
-        if conv.all():
-            break
-        todo = np.flatnonzero(~conv)
-        Xt = V @ Y[:, todo]
+        Xt = V.dot(Y[:, todo])
         kt = ks[todo]
         betas = pencil.betas(pencil.frequency(kt))
-        R = K @ Xt - (M @ Xt) * kt**2
-        for t, b in zip(pencil.terms, betas):
-            R = R + (t.B @ Xt) * (1j * kt * b)
-        T = precondition(R)
-        p_old = V.shape[1]
-        V, MV, added = _m_orth_extend(V, MV, np.hstack([T.real, T.imag]), M)
+        R = pencil.apply(kt, Xt, betas)
+        r = pencil.backward_errors(kt, Xt, betas, R)
+        rel[todo] = r
+        # a mode held loosely that has moved into the selection is taken up again
+        conv = rel < tolerances()
+        ok = conv[todo]
+        outer_at[todo[ok]] = outer
+        if conv.all():
+            break
+        # expand by the preconditioned residuals of the modes not converged
+        T = precondition(R[:, ~ok])
+        del R, Xt
+        Wn, MWn = _m_orth_extend(V, MV, np.hstack([T.real, T.imag]), M)
+        del T
+        added = Wn.shape[1]
         if added == 0:
             break
-        Wn = V[:, p_old:]
         KW = K @ Wn
-        KV = np.block([[KV, V[:, :p_old].T @ KW], [KW.T @ V[:, :p_old], Wn.T @ KW]])
-        for s, t in enumerate(pencil.terms):
-            BW = t.B @ Wn
-            BV[s] = np.block([[BV[s], V[:, :p_old].T @ BW], [BW.T @ V[:, :p_old], Wn.T @ BW]])
+        VtKW = V.tdot(KW)
+        KV = np.block([[KV, VtKW], [VtKW.T, Wn.T @ KW]])
+        del KW
+        for s_, (rows, Bw) in enumerate(pencil.wall_blocks):  # on the wall's DOFs only
+            Vr, Wr = V.rows(rows), Wn[rows]
+            BW = Bw @ Wr
+            BV[s_] = np.block([[BV[s_], Vr.T @ BW], [BW.T @ Vr, Wr.T @ BW]])
+        V.append(Wn)
+        MV.append(MWn)
+        del Wn, MWn
         Y = np.vstack([Y, np.zeros((added, m), complex)])
-    X = V @ Y
-    info = dict(outer_iterations=int(outer), basis_size=int(V.shape[1]),
+    X = V.dot(Y)
+    info = dict(outer_iterations=int(outer), basis_size=int(V.p),
                 inner_iterations=inner.tolist(), converged_at_outer=outer_at.tolist())
     return ks, X, rel, info
 

@@ -244,6 +244,38 @@ def test_frequency_dependent_tube(tube_p2, engine, monkeypatch):
     assert np.max(np.abs(frozen.imag / ref.imag - 1)) > 0.1
 
 
+def test_refinement_holds_the_selection_strictly(tube_p2):
+    """refine_nonlinear with count=: the selected modes (lowest by refined
+    frequency) reach REFINE_TOL, the margin past them MARGIN_TOL; with every
+    mode selected they all reach REFINE_TOL -- and the selected roots agree.
+    Reference for the roots: scipy brentq on the tube's exact equation."""
+    asm = af.assemble(tube_p2, 2)
+    wall = Impedance(admittance=resonant_admittance)
+    B = af.boundary_mass(asm.dofs, "x1")
+    pencil = _damped.Pencil(asm.K, asm.M, [_damped.WallTerm("x1", wall, B)], AIR, 1.0)
+    beta_ref = pencil.betas(np.array([600.0]))[:, 0]
+    lin = _damped.solve_linear(pencil, beta_ref, count=10, kmax=None, n_estimate=10, tau=1.0,
+                               has_static=True)
+    ks, X, res, info = _damped.refine_nonlinear(pencil, lin.ks, lin.X,
+                                                lin.first_solver.precondition, count=6)
+    f = pencil.frequency(ks)
+    sel = np.argsort(f, kind="stable")[:6]
+    rest = np.setdiff1d(np.arange(ks.size), sel)
+    assert np.all(res[sel] < _damped.REFINE_TOL)
+    assert rest.size == 4 and np.all(res[rest] < _damped.MARGIN_TOL)
+    ks_all, _, res_all, _ = _damped.refine_nonlinear(pencil, lin.ks, lin.X,
+                                                     lin.first_solver.precondition)
+    assert np.all(res_all < _damped.REFINE_TOL)
+    # the same selected roots (backward errors < 1e-10: agreement ~1e-10)
+    np.testing.assert_allclose(np.sort_complex(ks[sel]),
+                               np.sort_complex(ks_all[np.argsort(pencil.frequency(ks_all),
+                                                                 kind="stable")[:6]]),
+                               rtol=1e-8)
+    ref = np.array([nonlinear_tube_root(n) for n in range(1, 6)])  # scipy brentq
+    k = np.sort_complex(ks[sel])[1:]
+    np.testing.assert_allclose(k.real, ref.real, rtol=1e-4)  # P2 error, as above
+
+
 # ---------------------------------------------------------------------------
 # 3. rectangular room with uniformly absorbing walls
 # ---------------------------------------------------------------------------
