@@ -670,6 +670,26 @@ def test_centred_window_equals_gmres_path(box_mesh, monkeypatch):
     notes = [w.get("note", "") for w in again.info["windows"]]
     assert any("misses the origin" in n for n in notes)
     np.testing.assert_allclose(again.wavenumbers, old.wavenumbers, rtol=1e-9, atol=1e-10)
+    # a centre too low in the band: the disk reaches the origin but holds too
+    # few roots below its cut; the engine continues on the same factor (one
+    # factorisation in all), or later windows complete the set
+    def low(*a, **k):  # half the centre, just enough roots to reach the origin
+        out = start(*a, **k)
+        return None if out is None else (0.5 * out[0], BOX_COUNT + 1)
+
+    monkeypatch.setattr(_damped, "_centred_start", low)
+    lower = af.solve_modes(box_mesh, walls, order=2, count=BOX_COUNT, air=AIR)
+    notes = [w.get("note", "") for w in lower.info["windows"]]
+    assert any("too few roots below the cut" in n for n in notes)
+    assert {w["sigma_re"] for w in lower.info["windows"]} == {lower.info["windows"][0]["sigma_re"]}
+    np.testing.assert_allclose(lower.wavenumbers, old.wavenumbers, rtol=1e-9, atol=1e-10)
+    # and by fmax instead of count: every root up to it, the same as the GMRES path
+    fmax = float(old.frequencies[-2]) + 0.5 * float(old.frequencies[-1] - old.frequencies[-2])
+    by_f = af.solve_modes(box_mesh, walls, order=2, fmax=fmax, air=AIR)
+    monkeypatch.setattr(_damped, "USE_MUMPS", False)
+    ref_f = af.solve_modes(box_mesh, walls, order=2, fmax=fmax, air=AIR)
+    assert by_f.wavenumbers.size == ref_f.wavenumbers.size == BOX_COUNT - 1
+    np.testing.assert_allclose(by_f.wavenumbers, ref_f.wavenumbers, rtol=1e-9, atol=1e-10)
 
 
 def test_centred_window_on_a_porous_layer_room(monkeypatch):
