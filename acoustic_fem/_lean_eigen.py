@@ -143,6 +143,7 @@ def solve_amg(K, M, solver: AmgSolver, *, count, lam_max, lam_guess, n_estimate)
             start[:, : Y.shape[1]] = Y
         t1 = time.perf_counter()
         used = 0
+        mu = None  # Ritz values of the last round (none before the first)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # non-convergence is checked below
             # LOBPCG stops only when the whole block has converged, and the

@@ -80,7 +80,6 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     """
     ct = mesh.cell_type
     d = ct.dim
-    nv = d + 1
     pts = mesh.points
     n0 = mesh.n_points
     if mesh.geometry_order == 1:

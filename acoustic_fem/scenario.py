@@ -1845,7 +1845,7 @@ def _sweep(api, sc: Scenario, mesh, walls, freqs, map_pts, progress, asm, field_
         progress("sweep", 0, len(freqs))
     chunks = (np.array_split(freqs, min(len(freqs), 20)) if sc.response_method == "direct"
               else [freqs])
-    parts, info = [], []
+    parts = []
     done = 0
     field_hz = np.asarray(field_hz, dtype=float)
     for ch in chunks:

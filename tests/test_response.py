@@ -46,8 +46,8 @@ import acoustic_fem as af
 import meshgen
 from acoustic_fem import Impedance, InputError, PressureRelease
 from acoustic_fem._locate import interpolation_matrix, locate
-from acoustic_fem.response import (PointSource, ReceiverPlane, Response, receiver_line,
-                                   receiver_plane, solve_response)
+from acoustic_fem.response import (PointSource, Response, receiver_line, receiver_plane,
+                                   solve_response)
 
 # The exactness checks (reciprocity, energy, scikit-fem) hold for any mesh, so
 # coarse meshes are used at frequencies they do not resolve: the
