@@ -240,8 +240,6 @@ class CompanionKrylovSchur:
             self.fresh_directions += int(weak.sum())
         self.A[:r2, j + b:j + 2 * b] = qz[:r2]
         self.B[:r2, j + b:j + 2 * b] = qz[r2:]
-        self.A[r:r2, :j + b] = 0.0
-        self.B[r:r2, :j + b] = 0.0
         self.H[:j + b, j:j + b] = h
         self.H[j + b:j + 2 * b, j:j + b] = Rz
         self.r = r2
@@ -259,12 +257,14 @@ class CompanionKrylovSchur:
         res = np.linalg.norm(self.H[k:k + b, :k] @ Y, axis=0)
         return w, Y, res
 
-    def _restart(self, p: int):
-        """Keep the p Ritz values of largest modulus (conjugate pairs together)."""
+    def _restart(self, p: int, w):
+        """Keep the p Ritz values of largest modulus (conjugate pairs together).
+
+        w : the current Ritz values by decreasing modulus (from :meth:`_ritz`).
+        """
         k, b, r = self.k, self.b, self.r
         Hk = self.H[:k, :k]
-        mod = np.sort(np.abs(np.linalg.eigvals(Hk)))[::-1]
-        thr = mod[p - 1] * (1.0 - 1e-12)
+        thr = abs(w[p - 1]) * (1.0 - 1e-12)
         if self.real:
             T, U, p = sla.schur(Hk, output="real", sort=lambda x, y: math.hypot(x, y) >= thr)
         else:
@@ -327,8 +327,10 @@ class CompanionKrylovSchur:
         def converged(w, res):
             return res[:nev] <= tol * np.abs(w[:nev])
 
+        w_at = -1  # size of the decomposition whose Ritz values w holds
         if self.k >= nev:  # a continued decomposition may hold them already
             w, Y, res = self._ritz()
+            w_at = self.k
             if np.all(converged(w, res)):
                 return self._result(w, Y, nev)
         for restart in range(max_restarts + 1):
@@ -336,11 +338,14 @@ class CompanionKrylovSchur:
                 self._expand_block()
                 if self.k >= nev:
                     w, Y, res = self._ritz()
+                    w_at = self.k
                     if np.all(converged(w, res)):
                         return self._result(w, Y, nev)
             if restart == max_restarts:
                 break
-            self._restart(p_keep)
+            if w_at != self.k:  # the Ritz values of this decomposition, once
+                w, Y, res = self._ritz()
+            self._restart(p_keep, w)
             if self.k + b > m:  # ties at the threshold kept more: make room
                 m = self.k + b
                 if m > n2 - b:
